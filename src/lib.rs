@@ -1,0 +1,13 @@
+//! Mullion: look inside a shifted-window hierarchical vision transformer backbone, on the CPU,
+//! from your own checkpoint and your own images.
+//!
+//! The library holds everything; the binary only parses arguments and dispatches.
+
+pub mod backbone;
+pub mod cli;
+pub mod error;
+pub mod geometry;
+pub mod input;
+pub mod worker;
+
+pub use error::{Error, Result};
