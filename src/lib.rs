@@ -8,6 +8,7 @@ pub mod cli;
 pub mod error;
 pub mod geometry;
 pub mod input;
+pub mod scene;
 pub mod worker;
 
 pub use error::{Error, Result};

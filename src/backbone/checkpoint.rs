@@ -40,8 +40,11 @@ impl LayoutKind {
         }
     }
 
-    /// The padding semantics the library that writes this layout computes with.
-    pub fn default_semantics(self) -> Semantics {
+    /// The padding semantics the library that writes this layout computes with. Backbones
+    /// that carry per-stage output norms come from dense-prediction code (the detection
+    /// release; transformers' backbone class), which always partitions: small stages are padded
+    /// up to the window and keep their shift.
+    pub fn default_semantics(self, has_stage_norms: bool) -> Semantics {
         match self {
             LayoutKind::Timm => Semantics {
                 pad_order: PadOrder::ShiftThenPad,
@@ -50,7 +53,11 @@ impl LayoutKind {
             LayoutKind::Original | LayoutKind::Transformers4 | LayoutKind::Transformers5 => {
                 Semantics {
                     pad_order: PadOrder::PadThenShift,
-                    small_stage: SmallStage::Clamp,
+                    small_stage: if has_stage_norms {
+                        SmallStage::PadUp
+                    } else {
+                        SmallStage::Clamp
+                    },
                 }
             }
         }
@@ -178,6 +185,32 @@ fn block_name_tf5(part: &str) -> Recipe {
 }
 
 impl Layout {
+    /// Where a part may be, in order of preference. transformers 5.x backbones keep the model
+    /// under `swin.` but their per-stage norms beside it, so those are also looked for one
+    /// prefix level up.
+    fn recipes(&self, part: &Part) -> Vec<Recipe> {
+        let mut out = vec![self.recipe(part)];
+        if let (Part::StageNorm(..), LayoutKind::Transformers4 | LayoutKind::Transformers5) =
+            (part, self.kind)
+        {
+            let trimmed = self.prefix.trim_end_matches('.');
+            let parent = match trimmed.rsplit_once('.') {
+                Some((head, _)) => format!("{head}."),
+                None => String::new(),
+            };
+            if parent != self.prefix {
+                out.push(
+                    Layout {
+                        kind: self.kind,
+                        prefix: parent,
+                    }
+                    .recipe(part),
+                );
+            }
+        }
+        out
+    }
+
     fn recipe(&self, part: &Part) -> Recipe {
         let p = &self.prefix;
         let one = |s: String| Recipe::One(s);
@@ -407,9 +440,18 @@ impl Checkpoint {
         })
     }
 
+    /// The first way of reading `part` whose tensors are all in the file (else the preferred one).
+    fn resolve(&self, part: &Part) -> Recipe {
+        let all = self.layout.recipes(part);
+        all.iter()
+            .find(|r| r.names().iter().all(|n| self.shapes.contains_key(*n)))
+            .unwrap_or(&all[0])
+            .clone()
+    }
+
     /// Shape of a canonical part, if every tensor it is made of is present.
     pub fn shape(&self, part: &Part) -> Option<Vec<usize>> {
-        match self.layout.recipe(part) {
+        match self.resolve(part) {
             Recipe::One(n) => self.shapes.get(&n).map(|s| s.0.clone()),
             Recipe::Cat(names) => {
                 let mut out: Option<Vec<usize>> = None;
@@ -464,7 +506,7 @@ impl Checkpoint {
 
     /// Load a canonical part as f32 with the expected shape.
     pub fn load(&self, part: &Part, expected: &[usize]) -> Result<Tensor> {
-        let recipe = self.layout.recipe(part);
+        let recipe = self.resolve(part);
         let shape = self.shape(part).ok_or_else(|| {
             Error::bad_file(
                 &self.path,

@@ -8,5 +8,6 @@ pub mod model;
 pub use checkpoint::{Checkpoint, LayoutKind, Part};
 pub use config::{Config, ConfigOverride};
 pub use model::{
-    AttentionTap, Backbone, ForwardOptions, LoadReport, Progress, RunControl, StageOutputs,
+    random_timm_state_dict, AttentionTap, Backbone, ForwardOptions, LoadReport, Progress,
+    RunControl, StageOutputs,
 };

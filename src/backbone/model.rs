@@ -139,7 +139,7 @@ impl Backbone {
         } else {
             None
         };
-        let default_semantics = LayoutKind::Timm.default_semantics();
+        let default_semantics = LayoutKind::Timm.default_semantics(false);
         Ok(Backbone {
             config,
             default_semantics,
@@ -194,7 +194,7 @@ impl Backbone {
                 Error::BadArgument(m) => Error::bad_file(&ckpt.path, m),
                 other => other,
             })?;
-        let mut sem = ckpt.layout.kind.default_semantics();
+        let mut sem = ckpt.layout.kind.default_semantics(stage_norms);
         if let Some(p) = over.pad_order {
             sem.pad_order = p;
         }
@@ -455,6 +455,43 @@ impl WeightSource for RandomWeights {
     }
 }
 
+/// Records every tensor a [`RandomWeights`] hands out, under timm's names.
+struct Recording<'a> {
+    inner: &'a RandomWeights,
+    out: RefCell<std::collections::BTreeMap<String, Tensor>>,
+}
+
+impl WeightSource for Recording<'_> {
+    fn get(&self, part: Part, shape: &[usize]) -> Result<Tensor> {
+        let t = self.inner.get(part.clone(), shape)?;
+        self.out.borrow_mut().insert(part.canonical(), t.clone());
+        Ok(t)
+    }
+    fn bias_table(&self, part: Part, heads: usize) -> Result<Tensor> {
+        let t = self.inner.bias_table(part.clone(), heads)?;
+        self.out.borrow_mut().insert(part.canonical(), t.clone());
+        Ok(t)
+    }
+}
+
+/// Random weights of `config` as a state dict in timm's key layout (with a final norm), e.g.
+/// to write a checkpoint file for tests or a placeholder model.
+pub fn random_timm_state_dict(
+    config: &Config,
+    seed: u64,
+) -> Result<std::collections::BTreeMap<String, Tensor>> {
+    let inner = RandomWeights {
+        rng: RefCell::new(rand::rngs::StdRng::seed_from_u64(seed)),
+        window: config.window,
+    };
+    let rec = Recording {
+        inner: &inner,
+        out: RefCell::new(Default::default()),
+    };
+    Backbone::build(config.clone(), &rec, false, true)?;
+    Ok(rec.out.into_inner())
+}
+
 /// A plain-words account of loading a checkpoint.
 #[derive(Debug, serde::Serialize)]
 pub struct LoadReport {
@@ -587,8 +624,28 @@ impl std::fmt::Display for LoadReport {
             self.used,
             self.ignored.len()
         )?;
-        for (name, why) in &self.ignored {
+        // Buffers come one per block: count them; name everything else (heads, necks ...).
+        let (buffers, named): (Vec<_>, Vec<_>) = self
+            .ignored
+            .iter()
+            .partition(|(_, why)| why.starts_with("buffer"));
+        if !buffers.is_empty() {
+            writeln!(
+                f,
+                "  ignored    {} buffers (relative_position_index, attn_mask), recomputed",
+                buffers.len()
+            )?;
+        }
+        const SHOWN: usize = 24;
+        for (name, why) in named.iter().take(SHOWN) {
             writeln!(f, "  ignored    {name} ({why})")?;
+        }
+        if named.len() > SHOWN {
+            writeln!(
+                f,
+                "  ignored    ... and {} more (see --json)",
+                named.len() - SHOWN
+            )?;
         }
         Ok(())
     }
