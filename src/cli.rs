@@ -36,6 +36,19 @@ pub enum Command {
     Bench(BenchArgs),
     /// Run a checkpoint on one image and print a per-stage summary.
     Summary(SummaryArgs),
+    /// Save the stage-by-stage figure of one image (and, if asked, per-stage statistics).
+    Figure(crate::figure_cli::FigureArgs),
+    /// Open the window on the given images or folders.
+    Open(OpenArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct OpenArgs {
+    /// Image files or folders of images.
+    pub images: Vec<PathBuf>,
+    /// Checkpoint file [default: random weights, said so on screen].
+    #[arg(long, value_name = "FILE")]
+    pub weights: Option<PathBuf>,
 }
 
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -416,44 +429,13 @@ pub fn summary(args: &SummaryArgs) -> Result<()> {
     print_summary(&out)
 }
 
-/// No arguments: run the bundled demo checkpoint (or, until one is bundled, random weights of a
-/// small shape, said so plainly) on the bundled sample image and print the summary.
+/// No arguments: open the window on the bundled demo (sample images, and the demo checkpoint
+/// when one is bundled; otherwise random weights, said so on screen).
 pub fn demo() -> Result<()> {
-    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-data");
-    let image = std::fs::read_dir(&root)
-        .map_err(|e| Error::io(&root, e))?
-        .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.extension().is_some_and(|x| x == "png"))
-        .min()
-        .ok_or_else(|| Error::bad_file(&root, "no sample image (.png) in the folder"))?;
-    let weights = root.join("demo.safetensors");
-    if weights.exists() {
-        let args = SummaryArgs {
-            run: RunArgs {
-                weights,
-                config: None,
-                pad_order: None,
-                small_stage: None,
-                mean: None,
-                std: None,
-                max_memory_gb: 12.0,
-            },
-            image,
-        };
-        return summary(&args);
-    }
-    println!(
-        "RANDOM WEIGHTS (no demo checkpoint bundled yet): the maps show no learned structure."
-    );
-    let config = Config {
-        embed_dim: 32,
-        heads: vec![1, 2, 4, 8],
-        ..Config::tiny()
-    };
-    let model = Backbone::random(config, 7)?;
-    let img = input::load_image(&image)?;
-    let x = input::normalise(&img, &Normalisation::IMAGENET)?;
-    println!("image {}", image.display());
-    let out = model.forward(&x, &ForwardOptions::default(), &RunControl::default())?;
-    print_summary(&out)
+    let (images, weights) = crate::app::demo_inputs();
+    crate::app::run(images, weights)
+}
+
+pub fn open(args: &OpenArgs) -> Result<()> {
+    crate::app::run(args.images.clone(), args.weights.clone())
 }

@@ -3,11 +3,15 @@
 //!
 //! The library holds everything; the binary only parses arguments and dispatches.
 
+pub mod analysis;
+pub mod app;
 pub mod backbone;
 pub mod cli;
 pub mod error;
+pub mod figure_cli;
 pub mod geometry;
 pub mod input;
+pub mod render;
 pub mod scene;
 pub mod worker;
 

@@ -11,6 +11,8 @@ fn main() -> ExitCode {
         Some(Command::Inspect(a)) => cli::inspect(a),
         Some(Command::Bench(a)) => cli::bench(a),
         Some(Command::Summary(a)) => cli::summary(a),
+        Some(Command::Figure(a)) => mullion::figure_cli::figure(a),
+        Some(Command::Open(a)) => cli::open(a),
         None => cli::demo(),
     };
     match result {
