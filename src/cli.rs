@@ -40,6 +40,24 @@ pub enum Command {
     Figure(crate::figure_cli::FigureArgs),
     /// Open the window on the given images or folders.
     Open(OpenArgs),
+    /// Regenerate the synthetic demo images (seedling trays) and their cell labels.
+    SampleData(SampleDataArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct SampleDataArgs {
+    /// Folder to write into.
+    #[arg(long, value_name = "DIR")]
+    pub out: PathBuf,
+}
+
+pub fn sample_data(args: &SampleDataArgs) -> Result<()> {
+    std::fs::create_dir_all(&args.out).map_err(|e| Error::io(&args.out, e))?;
+    let written = crate::scene::write_sample_set(&args.out).map_err(|e| Error::io(&args.out, e))?;
+    for p in written {
+        println!("{}", p.display());
+    }
+    Ok(())
 }
 
 #[derive(Args, Debug)]

@@ -191,7 +191,8 @@ pub fn figure(args: &FigureArgs) -> Result<()> {
         checkpoint,
         map_label: kind.label(),
         notes,
-        text_px: 14.0,
+        // Text grows with the panels so it stays readable next to them.
+        text_px: (11.0 + 3.0 * scale).clamp(12.0, 32.0),
     })?;
     render::save_png_atomic(&fig, &args.out)?;
     if args.stats.is_some() || args.csv.is_some() {

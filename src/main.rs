@@ -13,6 +13,7 @@ fn main() -> ExitCode {
         Some(Command::Summary(a)) => cli::summary(a),
         Some(Command::Figure(a)) => mullion::figure_cli::figure(a),
         Some(Command::Open(a)) => cli::open(a),
+        Some(Command::SampleData(a)) => cli::sample_data(a),
         None => cli::demo(),
     };
     match result {

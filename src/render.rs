@@ -492,7 +492,7 @@ pub fn render_legend(colormap: Colormap, range: &ScaleRange, width: u32, height:
             .map(|v| (v, format_tick(v, 0.0)))
             .collect()
     } else {
-        let (t, step) = linear_ticks(range.lo, range.hi, 4);
+        let (t, step) = linear_ticks(range.lo, range.hi, 5);
         t.into_iter().map(|v| (v, format_tick(v, step))).collect()
     };
     let pos = |v: f32| {
@@ -630,7 +630,7 @@ fn blit(dst: &mut RgbaImage, src: &RgbaImage, x: u32, y: u32) {
 }
 
 /// The full figure: the image, then one panel per stage side by side, each with a title and
-/// a legend, and a caption (checkpoint, input size, map kind, grid key, caution) below.
+/// a legend right below it, and a caption (checkpoint, input size, map kind, grid key, caution) below.
 pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
     let g = spec.geometry;
     let style = &spec.style;
@@ -750,7 +750,7 @@ pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
         let y = margin + title_h;
         blit(&mut fig, panel, x, y);
         if let Some(l) = legend {
-            blit(&mut fig, l, x, y + panel_h + 4);
+            blit(&mut fig, l, x, y + panel.height() + 4);
         }
         x += w + gap;
     }
@@ -772,14 +772,24 @@ pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
             y + lh - 2,
             PADDING_FILL,
         );
-        fill_rect(
-            &mut fig,
-            margin,
-            sy - thick / 2,
-            margin + sw,
-            sy - thick / 2 + thick,
-            *colour,
-        );
+        if *colour == PADDING_HATCH {
+            for yy in y + 2..y + lh - 2 {
+                for xx in margin..margin + sw {
+                    if is_hatch(xx, yy) {
+                        fill_rect(&mut fig, xx, yy, xx + 1, yy + 1, PADDING_HATCH);
+                    }
+                }
+            }
+        } else {
+            fill_rect(
+                &mut fig,
+                margin,
+                sy - thick / 2,
+                margin + sw,
+                sy - thick / 2 + thick,
+                *colour,
+            );
+        }
         draw_text(&mut fig, label, (margin + sw + 6) as f32, y as f32, px, INK);
         y += lh;
     }

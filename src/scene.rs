@@ -1518,21 +1518,3 @@ mod tests {
         eprintln!("640x427 scene in {:?}", start.elapsed());
     }
 }
-#[cfg(test)]
-mod scratch {
-    #[test]
-    #[ignore]
-    fn scene_zoom() {
-        let spec = &super::sample_set()[std::env::var("IDX").unwrap().parse::<usize>().unwrap()];
-        let s = super::generate(spec);
-        let img = image::imageops::resize(
-            &s.image,
-            s.image.width() * 3,
-            s.image.height() * 3,
-            image::imageops::FilterType::Nearest,
-        );
-        let c = image::imageops::crop_imm(&img, 0, 0, 600.min(img.width()), 450.min(img.height()))
-            .to_image();
-        c.save("/tmp/zoom.png").unwrap();
-    }
-}

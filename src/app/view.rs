@@ -200,12 +200,12 @@ fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
 /// Keyboard shortcuts (shown in the help overlay).
 pub const SHORTCUTS: [(&str, &str); 10] = [
     ("N / B", "next / previous image in the list"),
-    ("1 - 9", "put stage 1-9 in the lens"),
+    ("0 - 9", "put stage 0-9 in the lens"),
     ("W", "regular window grid on / off"),
     ("Q", "shifted window grid on / off"),
     ("X", "padding hatch on / off"),
     ("K", "next map kind (norm, channel, PCA)"),
-    ("0", "fit the lens to its area"),
+    ("F", "fit the lens to its area"),
     ("Ctrl+S", "save figure and statistics"),
     ("Esc", "cancel the running forward pass"),
     ("F1", "this help"),
@@ -225,6 +225,7 @@ pub fn shortcuts(bench: &mut Workbench, ui: &mut egui::Ui) {
         bench.previous_image();
     }
     let keys = [
+        Key::Num0,
         Key::Num1,
         Key::Num2,
         Key::Num3,
@@ -257,7 +258,7 @@ pub fn shortcuts(bench: &mut Workbench, ui: &mut egui::Ui) {
         };
         bench.settings.map_kind = next.into();
     }
-    if pressed(Key::Num0) {
+    if pressed(Key::F) {
         bench.view.zoom = 1.0;
         bench.view.pan = Vec2::ZERO;
     }
@@ -285,12 +286,14 @@ pub fn top_bar(bench: &mut Workbench, ui: &mut egui::Ui) {
                 bench.pick_in_background(true, false);
             }
             ui.separator();
-            ui.label("Path:");
-            let field = ui.add(
-                egui::TextEdit::singleline(&mut bench.typed_path)
-                    .hint_text("image, folder or checkpoint")
-                    .desired_width(260.0),
-            );
+            let label = ui.label("Path:");
+            let field = ui
+                .add(
+                    egui::TextEdit::singleline(&mut bench.typed_path)
+                        .hint_text("image, folder or checkpoint")
+                        .desired_width(260.0),
+                )
+                .labelled_by(label.id);
             let enter = field.lost_focus() && ui.input(|i| i.key_pressed(egui::Key::Enter));
             if ui.button("Open path").clicked() || enter {
                 let p = PathBuf::from(bench.typed_path.trim());
@@ -359,7 +362,7 @@ pub fn top_bar(bench: &mut Workbench, ui: &mut egui::Ui) {
                 let (frac, text) = match bench.progress() {
                     Some(p) => (
                         p.done as f32 / p.total as f32,
-                        format!("stage {} — block {}/{}", p.stage + 1, p.done, p.total),
+                        format!("stage {} — block {}/{}", p.stage, p.done, p.total),
                     ),
                     None => (0.0, "starting…".into()),
                 };
@@ -430,11 +433,15 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
     ui.radio_value(&mut kind, 1, "Fit long side");
     ui.radio_value(&mut kind, 2, "Fixed square");
     if kind != 0 {
-        ui.add(
-            egui::DragValue::new(&mut size)
-                .range(16..=4096)
-                .suffix(" px"),
-        );
+        ui.horizontal(|ui| {
+            labelled_drag(
+                ui,
+                "size",
+                egui::DragValue::new(&mut size)
+                    .range(16..=4096)
+                    .suffix(" px"),
+            );
+        });
     }
     s.policy = match kind {
         0 => InputPolicy::Native,
@@ -452,19 +459,17 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
     });
     for c in 0..3 {
         ui.horizontal(|ui| {
-            ui.label(["R", "G", "B"][c]);
-            ui.add(
-                egui::DragValue::new(&mut s.norm.mean[c])
-                    .speed(0.005)
-                    .range(-10.0..=10.0)
-                    .max_decimals(3),
-            );
-            ui.add(
-                egui::DragValue::new(&mut s.norm.std[c])
-                    .speed(0.005)
-                    .range(0.001..=10.0)
-                    .max_decimals(3),
-            );
+            let name = ["R", "G", "B"][c];
+            let mean = egui::DragValue::new(&mut s.norm.mean[c])
+                .speed(0.005)
+                .range(-10.0..=10.0)
+                .max_decimals(3);
+            labelled_drag(ui, &format!("{name} mean"), mean);
+            let std = egui::DragValue::new(&mut s.norm.std[c])
+                .speed(0.005)
+                .range(0.001..=10.0)
+                .max_decimals(3);
+            labelled_drag(ui, "std", std);
         });
     }
     if let Some(shown) = &bench.shown {
@@ -479,11 +484,7 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
             let (pr, pc) = st.padded();
             ui.small(format!(
                 "stage {}: {}x{} tokens, padded to {}x{}",
-                st.index + 1,
-                st.grid.1,
-                st.grid.0,
-                pc,
-                pr
+                st.index, st.grid.1, st.grid.0, pc, pr
             ));
         }
     }
@@ -503,15 +504,18 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
         });
     if s.map_kind == "channel" {
         ui.horizontal(|ui| {
-            ui.label("channel");
-            ui.add(egui::DragValue::new(&mut s.channel).range(0..=4095));
+            labelled_drag(
+                ui,
+                "channel",
+                egui::DragValue::new(&mut s.channel).range(0..=4095),
+            );
         });
         if let Some(shown) = &bench.shown {
             let stage = s
                 .focus_stage
                 .min(shown.outputs.stages.len().saturating_sub(1));
             if let Ok(ranked) = analysis::rank_channels(&shown.outputs, stage) {
-                ui.small(format!("strongest in stage {} (by mean):", stage + 1));
+                ui.small(format!("strongest in stage {} (by mean):", stage));
                 ui.horizontal_wrapped(|ui| {
                     for (ch, mean) in ranked.iter().take(8) {
                         if ui.small_button(format!("{ch} ({mean:.2})")).clicked() {
@@ -532,13 +536,16 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
     ui.checkbox(&mut s.shared_scale, "One scale for all stages");
     ui.checkbox(&mut s.log_scale, "Log scale");
     ui.horizontal(|ui| {
-        ui.label("clip %");
-        ui.add(
+        labelled_drag(
+            ui,
+            "clip low %",
             egui::DragValue::new(&mut s.clip_low)
                 .range(0.0..=49.0)
                 .speed(0.1),
         );
-        ui.add(
+        labelled_drag(
+            ui,
+            "high %",
             egui::DragValue::new(&mut s.clip_high)
                 .range(51.0..=100.0)
                 .speed(0.1),
@@ -562,20 +569,31 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
             / 2
     });
     ui.horizontal(|ui| {
-        ui.label("block pair");
-        ui.add(egui::DragValue::new(&mut s.block_pair).range(0..=max_pair));
+        labelled_drag(
+            ui,
+            "block pair",
+            egui::DragValue::new(&mut s.block_pair).range(0..=max_pair),
+        );
     });
     ui.small("pair k draws block 2k (regular) and 2k+1 (shifted)");
 
     ui.separator();
     ui.heading("Lens");
     ui.horizontal(|ui| {
-        ui.label("stage");
-        let mut shown_stage = s.focus_stage + 1;
-        ui.add(egui::DragValue::new(&mut shown_stage).range(1..=n_stages.max(1)));
-        s.focus_stage = shown_stage.saturating_sub(1);
+        let last = n_stages.saturating_sub(1);
+        labelled_drag(
+            ui,
+            "lens stage",
+            egui::DragValue::new(&mut s.focus_stage).range(0..=last),
+        );
     });
     ui.add(egui::Slider::new(&mut s.opacity, 0.0..=1.0).text("map opacity"));
+}
+
+/// A number field with a visible name that assistive tools (and the tests) find it by.
+fn labelled_drag(ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>) -> egui::Response {
+    let label = ui.label(name);
+    ui.add(value).labelled_by(label.id)
 }
 
 /// Where a pointer over a picture drawn in `rect` (showing `canvas` input pixels) points, in
@@ -654,7 +672,7 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
                     let title = if idx == 0 {
                         "image".to_string()
                     } else {
-                        format!("stage {}", idx)
+                        format!("stage {}", idx - 1)
                     };
                     ui.small(title.clone());
                     let tex = if idx == 0 {
@@ -691,7 +709,7 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
             .focus_stage
             .min(geometry.stages.len().saturating_sub(1));
         ui.horizontal(|ui| {
-            ui.label(egui::RichText::new(format!("Lens — stage {}", focus + 1)).strong());
+            ui.label(egui::RichText::new(format!("Lens — stage {focus}")).strong());
             if ui.small_button("Fit").clicked() {
                 bench.view.zoom = 1.0;
                 bench.view.pan = Vec2::ZERO;
@@ -808,7 +826,7 @@ pub fn hover_lines(bench: &Workbench, p: (f32, f32)) -> Vec<String> {
         let fp = st.footprint(row, col, g.image);
         lines.push(format!(
             "stage {}: token (row {row}, col {col}), pixels x {}..{} y {}..{}, {value}, window {}",
-            st.index + 1,
+            st.index,
             fp[2],
             fp[3],
             fp[0],
