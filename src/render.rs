@@ -386,8 +386,8 @@ pub fn draw_text(img: &mut RgbaImage, text: &str, x: f32, y: f32, px: f32, colou
             }
             let p = img.get_pixel_mut(px_ as u32, py_ as u32);
             let a = cov.clamp(0.0, 1.0);
-            for k in 0..3 {
-                p.0[k] = ((1.0 - a) * p.0[k] as f32 + a * colour[k] as f32).round() as u8;
+            for (dst, &c) in p.0.iter_mut().zip(&colour) {
+                *dst = ((1.0 - a) * *dst as f32 + a * c as f32).round() as u8;
             }
             p.0[3] = 255;
         });
@@ -423,7 +423,7 @@ pub fn wrap_text(text: &str, px: f32, max_width: f32) -> Vec<String> {
 /// Tick positions for a linear axis over [lo, hi]: multiples of 1, 2 or 5 times a power of ten,
 /// about `target` of them.
 pub fn linear_ticks(lo: f32, hi: f32, target: usize) -> (Vec<f32>, f32) {
-    if !(hi > lo) || !lo.is_finite() || !hi.is_finite() {
+    if hi <= lo || !lo.is_finite() || !hi.is_finite() {
         return (vec![lo], 0.0);
     }
     let raw = (hi - lo) as f64 / target.max(1) as f64;

@@ -24,7 +24,13 @@ pub struct ViewState {
     pub pan: Vec2,
     /// Hovered point in input-image pixels.
     pub hover: Option<(f32, f32)>,
+    /// Whether the first drawn maps have been announced (see [`READY_FILE_ENV`]).
+    announced: bool,
 }
+
+/// When set, the window writes this file once the first stage maps are on screen, so an
+/// outside check (the real-window smoke test) knows when to take its screenshot.
+pub const READY_FILE_ENV: &str = "MULLION_READY_FILE";
 
 impl ViewState {
     pub fn invalidate(&mut self) {
@@ -760,6 +766,14 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
             }
         }
         bench.view.hover = new_hover;
+        if !bench.view.announced && !bench.view.stages.is_empty() {
+            bench.view.announced = true;
+            if let Some(path) = std::env::var_os(READY_FILE_ENV) {
+                // Announce after this frame is on screen.
+                ui.ctx().request_repaint();
+                let _ = std::fs::write(path, b"maps drawn\n");
+            }
+        }
     });
 }
 
