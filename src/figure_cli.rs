@@ -117,9 +117,14 @@ pub fn figure(args: &FigureArgs) -> Result<()> {
     let image = input::load_image(&args.image)?;
     let out = session.run_image(&args.image, false, false)?;
     let n = out.stages.len();
-    let raw: Vec<Map> = (0..n)
-        .map(|s| kind.compute(&out, s))
-        .collect::<Result<_>>()?;
+    // PCA keeps its fit (for the explained variance), so its maps come from the fit below.
+    let raw: Vec<Map> = if is_pca {
+        Vec::new()
+    } else {
+        (0..n)
+            .map(|s| kind.compute(&out, s))
+            .collect::<Result<_>>()?
+    };
     let stages: Vec<FigureStage> = if is_pca {
         (0..n)
             .map(|s| {

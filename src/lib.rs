@@ -11,8 +11,11 @@ pub mod error;
 pub mod figure_cli;
 pub mod geometry;
 pub mod input;
+pub mod labels;
 pub mod render;
+pub mod report_cli;
 pub mod scene;
+pub mod train;
 pub mod worker;
 
 pub use error::{Error, Result};

@@ -14,6 +14,7 @@ fn main() -> ExitCode {
         Some(Command::Figure(a)) => mullion::figure_cli::figure(a),
         Some(Command::Open(a)) => cli::open(a),
         Some(Command::SampleData(a)) => cli::sample_data(a),
+        Some(Command::TrainDemo(a)) => cli::train_demo(a),
         None => cli::demo(),
     };
     match result {

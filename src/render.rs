@@ -426,13 +426,24 @@ pub fn linear_ticks(lo: f32, hi: f32, target: usize) -> (Vec<f32>, f32) {
     if hi <= lo || !lo.is_finite() || !hi.is_finite() {
         return (vec![lo], 0.0);
     }
-    let raw = (hi - lo) as f64 / target.max(1) as f64;
-    let mag = 10f64.powf(raw.log10().floor());
-    let step = [1.0, 2.0, 5.0, 10.0]
-        .into_iter()
-        .map(|m| m * mag)
-        .find(|&s| s >= raw)
-        .unwrap_or(10.0 * mag);
+    let span = (hi - lo) as f64;
+    let target = target.max(2) as f64;
+    let e = (span / target).log10().floor() as i32;
+    // Among 1, 2 and 5 times nearby powers of ten, the step whose tick count is closest to the
+    // target (the larger step on a tie).
+    let count = |step: f64| ((hi as f64 / step).floor() - (lo as f64 / step).ceil() + 1.0).max(0.0);
+    let mut step = 10f64.powi(e);
+    let mut best = f64::INFINITY;
+    for p in [e - 1, e, e + 1] {
+        for m in [1.0, 2.0, 5.0] {
+            let s = m * 10f64.powi(p);
+            let d = (count(s) - target).abs();
+            if d < best || (d == best && s > step) {
+                best = d;
+                step = s;
+            }
+        }
+    }
     let first = (lo as f64 / step).ceil() as i64;
     let last = (hi as f64 / step).floor() as i64;
     let ticks = (first..=last).map(|k| (k as f64 * step) as f32).collect();

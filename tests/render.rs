@@ -405,3 +405,30 @@ fn figure_command_writes_png_and_stats() {
     bad.map = "pca".into();
     assert!(figure(&bad).is_err(), "stats of a colour map");
 }
+
+#[test]
+fn ticks_are_round_and_inside_the_range() {
+    for (lo, hi) in [
+        (0.37f32, 12.9f32),
+        (4.6, 8.9),
+        (-2.7, 1.3),
+        (1000.0, 1003.0),
+        (0.0, 1.0),
+    ] {
+        let (t, step) = render::linear_ticks(lo, hi, 5);
+        assert!((3..=8).contains(&t.len()), "{lo}..{hi}: {t:?}");
+        assert!(t.iter().all(|&v| v >= lo - 1e-4 && v <= hi + 1e-4), "{t:?}");
+        let mant = step / 10f32.powf(step.log10().floor());
+        assert!(
+            [1.0, 2.0, 5.0].iter().any(|m| (mant - m).abs() < 1e-3),
+            "step {step}"
+        );
+    }
+    assert_eq!(
+        render::log_ticks(0.01, 100.0),
+        vec![0.01, 0.1, 1.0, 10.0, 100.0]
+    );
+    assert_eq!(render::format_tick(2.5, 0.5), "2.5");
+    assert_eq!(render::format_tick(1000.0, 1.0), "1000");
+    assert_eq!(render::format_tick(2.0e6, 1e6), "2.0e6");
+}

@@ -35,6 +35,10 @@ impl LayerNorm {
         })
     }
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
+        // The fused kernel has no backward pass; training (tracked tensors) takes the composed one.
+        if x.track_op() || self.weight.track_op() {
+            return Ok(candle_nn::ops::layer_norm_slow(x, &self.weight, &self.bias, LN_EPS)?);
+        }
         Ok(candle_nn::ops::layer_norm(
             &x.contiguous()?,
             &self.weight,
@@ -44,18 +48,18 @@ impl LayerNorm {
     }
 }
 
-/// `y = x W^T + b`, with `W^T` stored contiguous once at load.
+/// `y = x W^T + b`. For inference `W^T` is stored contiguous once at load; trainable weights
+/// (variables) are transposed at each call so that updates to them are seen.
 pub struct Linear {
-    weight_t: Tensor,
+    weight: Tensor,
+    weight_t: Option<Tensor>,
     bias: Option<Tensor>,
 }
 
 impl Linear {
     pub fn from_weight(weight: &Tensor, bias: Option<Tensor>) -> Result<Self> {
-        Ok(Linear {
-            weight_t: weight.t()?.contiguous()?,
-            bias,
-        })
+        let weight_t = if weight.track_op() { None } else { Some(weight.t()?.contiguous()?) };
+        Ok(Linear { weight: weight.clone(), weight_t, bias })
     }
 
     pub fn new(
@@ -75,7 +79,10 @@ impl Linear {
     }
 
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let y = x.matmul(&self.weight_t)?;
+        let y = match &self.weight_t {
+            Some(wt) => x.matmul(wt)?,
+            None => x.matmul(&self.weight.t()?)?,
+        };
         Ok(match &self.bias {
             Some(b) => y.broadcast_add(b)?,
             None => y,
@@ -250,7 +257,11 @@ impl WindowAttention {
             let mask = Tensor::from_vec(mask, (n_windows, 1, n, n), &Device::Cpu)?;
             attn = attn.broadcast_add(&mask)?;
         }
-        let attn = candle_nn::ops::softmax_last_dim(&attn)?;
+        let attn = if attn.track_op() {
+            candle_nn::ops::softmax(&attn, D::Minus1)?
+        } else {
+            candle_nn::ops::softmax_last_dim(&attn)?
+        };
         let out = attn
             .matmul(&v)?
             .transpose(1, 2)?

@@ -93,7 +93,8 @@ pub struct StageOutputs {
 }
 
 impl Backbone {
-    fn build(
+    /// Build from any weight source; `stage_norms` / `final_norm` also load those norms.
+    pub fn build(
         config: Config,
         src: &dyn WeightSource,
         stage_norms: bool,
