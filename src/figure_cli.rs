@@ -2,12 +2,12 @@
 //! when asked, the per-stage statistics) through the shared renderer.
 
 use crate::analysis::{
-    self, fit_pca, normalise_maps, parse_map_kind, stage_stats, Colormap, Map, ScaleSpec,
+    self, parse_map_kind, stage_stats, Colormap, ScaleSpec,
 };
 use crate::cli::{RunArgs, Session};
 use crate::error::{Error, Result};
 use crate::input;
-use crate::render::{self, FigureSpec, FigureStage, Overlays, PanelStyle};
+use crate::render::{self, FigureSpec, Overlays, PanelStyle};
 use clap::Args;
 use std::path::PathBuf;
 
@@ -118,43 +118,10 @@ pub fn figure(args: &FigureArgs) -> Result<()> {
     let out = session.run_image(&args.image, false, false)?;
     let n = out.stages.len();
     // PCA keeps its fit (for the explained variance), so its maps come from the fit below.
-    let raw: Vec<Map> = if is_pca {
-        Vec::new()
-    } else {
-        (0..n)
-            .map(|s| kind.compute(&out, s))
-            .collect::<Result<_>>()?
-    };
-    let stages: Vec<FigureStage> = if is_pca {
-        (0..n)
-            .map(|s| {
-                let fit = fit_pca(&analysis::stage_tokens(&out, s)?)?;
-                Ok(FigureStage {
-                    stage: s,
-                    map: fit.rgb,
-                    range: None,
-                    explained: Some(fit.explained),
-                })
-            })
-            .collect::<Result<_>>()?
-    } else {
-        normalise_maps(&raw, &spec)?
-            .into_iter()
-            .enumerate()
-            .map(|(s, (map, range))| FigureStage {
-                stage: s,
-                map,
-                range: Some(range),
-                explained: None,
-            })
-            .collect()
-    };
-    let ih = image.height();
-    let scale = match args.scale {
-        Some(s) => s,
-        None if ih >= 256 => 1.0,
-        None => 256u32.div_ceil(ih.max(1)) as f32,
-    };
+    let (raw, stages) = render::figure_stages(&out, kind.as_ref(), &spec)?;
+    let scale = args
+        .scale
+        .unwrap_or_else(|| render::default_figure_scale(image.height()));
     let style = PanelStyle {
         colormap,
         opacity: args.opacity,

@@ -586,11 +586,14 @@ pub fn from_scene_labels(cells: &SceneLabels) -> Sidecar {
     for class in CellClass::ALL {
         sc.ensure_label(class.name());
     }
+    // Through the shortest decimal form, so 19.18 stays 19.18 rather than the f32's binary
+    // neighbour 19.18000030517578.
+    let wide = |v: f32| v.to_string().parse::<f64>().unwrap_or(v as f64);
     let rect_box = |r: [f32; 4]| Shape::Box {
-        x0: r[0] as f64,
-        y0: r[1] as f64,
-        x1: r[2] as f64,
-        y1: r[3] as f64,
+        x0: wide(r[0]),
+        y0: wide(r[1]),
+        x1: wide(r[2]),
+        y1: wide(r[3]),
     };
     for c in &cells.cells {
         let note = format!("tray row {}, column {}", c.row, c.col);

@@ -616,6 +616,44 @@ pub struct FigureStage {
     pub explained: Option<Vec<f64>>,
 }
 
+/// Every stage's map of one forward pass, raw (for read-outs and statistics) and scaled for
+/// display with its legend range (or, for PCA, the variance shares). The window and the figure
+/// command both prepare their pictures here.
+pub fn figure_stages(
+    out: &crate::backbone::StageOutputs,
+    kind: &dyn crate::analysis::MapKind,
+    spec: &crate::analysis::ScaleSpec,
+) -> Result<(Vec<Map>, Vec<FigureStage>)> {
+    let n = out.stages.len();
+    if kind.id() == "pca" {
+        let mut raw = Vec::with_capacity(n);
+        let mut stages = Vec::with_capacity(n);
+        for s in 0..n {
+            let fit = crate::analysis::fit_pca(&crate::analysis::stage_tokens(out, s)?)?;
+            raw.push(fit.rgb.clone());
+            stages.push(FigureStage { stage: s, map: fit.rgb, range: None, explained: Some(fit.explained) });
+        }
+        return Ok((raw, stages));
+    }
+    let raw: Vec<Map> = (0..n).map(|s| kind.compute(out, s)).collect::<Result<_>>()?;
+    let stages = crate::analysis::normalise_maps(&raw, spec)?
+        .into_iter()
+        .enumerate()
+        .map(|(s, (map, range))| FigureStage { stage: s, map, range: Some(range), explained: None })
+        .collect();
+    Ok((raw, stages))
+}
+
+/// Output pixels per input pixel for a saved figure: 1, or the whole factor that makes the
+/// image at least 256 pixels tall.
+pub fn default_figure_scale(image_height: u32) -> f32 {
+    if image_height >= 256 {
+        1.0
+    } else {
+        256u32.div_ceil(image_height.max(1)) as f32
+    }
+}
+
 /// Everything a figure shows.
 pub struct FigureSpec<'a> {
     pub image: &'a RgbImage,

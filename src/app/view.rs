@@ -3,7 +3,7 @@
 //! report. Pictures come from the shared renderer, so the screen shows what a saved figure shows.
 
 use super::{Level, Workbench};
-use crate::analysis::{self, fit_pca, normalise_maps, parse_map_kind, Colormap, Map, ScaleSpec};
+use crate::analysis::{self, parse_map_kind, Colormap, Map, ScaleSpec};
 use crate::error::{Error, Result};
 use crate::render::{self, FigureSpec, FigureStage, Overlays, PanelStyle};
 use egui::{Color32, Pos2, Rect, Sense, Stroke, TextureHandle, TextureOptions, Vec2};
@@ -16,6 +16,7 @@ pub struct ViewState {
     made_for: Option<String>,
     image: Option<TextureHandle>,
     stages: Vec<TextureHandle>,
+    legends: Vec<TextureHandle>,
     lens: Option<TextureHandle>,
     /// Raw (unscaled) map values per stage, for the hover read-out.
     raw: Vec<Map>,
@@ -71,42 +72,13 @@ pub fn panel_style(bench: &Workbench, scale: f32) -> PanelStyle {
     }
 }
 
-/// Every stage's map, scaled for display, with the legend range (or PCA shares).
+/// Every stage's map for the current settings (see [`render::figure_stages`]).
 pub fn prepare_stages(
     out: &crate::backbone::StageOutputs,
     map: &str,
     spec: &ScaleSpec,
 ) -> Result<(Vec<Map>, Vec<FigureStage>)> {
-    let kind = parse_map_kind(map)?;
-    let n = out.stages.len();
-    let raw: Vec<Map> = (0..n)
-        .map(|s| kind.compute(out, s))
-        .collect::<Result<_>>()?;
-    let stages = if kind.id() == "pca" {
-        (0..n)
-            .map(|s| {
-                let fit = fit_pca(&analysis::stage_tokens(out, s)?)?;
-                Ok(FigureStage {
-                    stage: s,
-                    map: fit.rgb,
-                    range: None,
-                    explained: Some(fit.explained),
-                })
-            })
-            .collect::<Result<_>>()?
-    } else {
-        normalise_maps(&raw, spec)?
-            .into_iter()
-            .enumerate()
-            .map(|(s, (map, range))| FigureStage {
-                stage: s,
-                map,
-                range: Some(range),
-                explained: None,
-            })
-            .collect()
-    };
-    Ok((raw, stages))
+    render::figure_stages(out, parse_map_kind(map)?.as_ref(), spec)
 }
 
 fn to_color_image(img: &image::RgbaImage) -> egui::ColorImage {
@@ -198,6 +170,17 @@ fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
     });
     bench.view.lens =
         lens.map(|img| ctx.load_texture("lens", to_color_image(&img), TextureOptions::NEAREST));
+    let colormap = strip_style.colormap;
+    bench.view.legends = prepared
+        .iter()
+        .map(|st| {
+            let img = match &st.range {
+                Some(r) => render::render_legend(colormap, r, 240, 40),
+                None => render::render_rgb_legend(st.explained.as_deref(), 240, 40),
+            };
+            ctx.load_texture(format!("legend{}", st.stage), to_color_image(&img), TextureOptions::LINEAR)
+        })
+        .collect();
     bench.view.stages = textures;
     bench.view.raw = raw;
     bench.view.prepared = prepared;
@@ -699,6 +682,10 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
                         crosshair(ui, resp.rect, canvas, bench.view.hover);
                     }
                     if idx > 0 {
+                        if let Some(tex) = bench.view.legends.get(idx - 1) {
+                            let w = size.x.min(240.0);
+                            ui.add(egui::Image::new((tex.id(), Vec2::new(w, w / 6.0))));
+                        }
                         legend_text(ui, bench.view.prepared.get(idx - 1));
                     }
                 });
