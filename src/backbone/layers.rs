@@ -215,6 +215,13 @@ pub struct WindowAttention {
     pub bias_table: BiasTable,
 }
 
+/// Rows of `x` (`[tokens, C]`) picked by `idx`, where index `tokens` is a zero padding row.
+fn gather_rows(x: &Tensor, idx: Vec<u32>) -> Result<Tensor> {
+    let c = x.dim(1)?;
+    let padded = Tensor::cat(&[x, &Tensor::zeros((1, c), DType::F32, &Device::Cpu)?], 0)?;
+    Ok(padded.index_select(&u32_tensor(idx)?, 0)?)
+}
+
 fn u32_tensor(v: Vec<u32>) -> Result<Tensor> {
     let n = v.len();
     Ok(Tensor::from_vec(v, n, &Device::Cpu)?)
@@ -236,9 +243,8 @@ impl WindowAttention {
         let heads = self.heads;
         let head_dim = c / heads;
 
-        // Pad, roll and partition in one gather: the extra last row is the zero padding token.
-        let padded = Tensor::cat(&[x, &Tensor::zeros((1, c), DType::F32, &Device::Cpu)?], 0)?;
-        let windows = padded.index_select(&u32_tensor(geo.gather_index())?, 0)?;
+        // Pad, roll and partition in one gather.
+        let windows = gather_rows(x, geo.gather_index())?;
 
         let qkv = self
             .qkv
@@ -361,10 +367,7 @@ impl PatchMerging {
     pub fn forward(&self, x: &Tensor, grid: (usize, usize)) -> Result<(Tensor, (usize, usize))> {
         let (_, c) = x.dims2()?;
         let (idx, out) = crate::geometry::merge_index(grid);
-        let padded = Tensor::cat(&[x, &Tensor::zeros((1, c), DType::F32, &Device::Cpu)?], 0)?;
-        let merged = padded
-            .index_select(&u32_tensor(idx)?, 0)?
-            .reshape((out.0 * out.1, 4 * c))?;
+        let merged = gather_rows(x, idx)?.reshape((out.0 * out.1, 4 * c))?;
         let y = self.reduction.forward(&self.norm.forward(&merged)?)?;
         Ok((y, out))
     }
