@@ -65,7 +65,10 @@ pub struct TrainDemoArgs {
 
 pub fn train_demo(args: &TrainDemoArgs) -> Result<()> {
     if !args.out.is_dir() {
-        return Err(Error::bad_file(&args.out, "the output folder does not exist"));
+        return Err(Error::bad_file(
+            &args.out,
+            "the output folder does not exist",
+        ));
     }
     let spec = crate::train::TrainSpec {
         steps: args.steps,
@@ -76,12 +79,17 @@ pub fn train_demo(args: &TrainDemoArgs) -> Result<()> {
     let start = std::time::Instant::now();
     let (model, log) = crate::train::train(&spec, Some(&args.out), |step, loss| {
         if step % 10 == 0 {
-            eprintln!("step {step:>4}  loss {loss:.4}  {:.0} s", start.elapsed().as_secs_f64());
+            eprintln!(
+                "step {step:>4}  loss {loss:.4}  {:.0} s",
+                start.elapsed().as_secs_f64()
+            );
         }
     })?;
     let card = crate::train::model_card(&spec, &model, &log, &args.out)?;
     let card_path = args.out.join("MODEL_CARD.md");
-    crate::render::write_atomic(&card_path, |tmp| std::fs::write(tmp, &card).map_err(|e| Error::io(tmp, e)))?;
+    crate::render::write_atomic(&card_path, |tmp| {
+        std::fs::write(tmp, &card).map_err(|e| Error::io(tmp, e))
+    })?;
     eprintln!("wrote {}", card_path.display());
     Ok(())
 }

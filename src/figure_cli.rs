@@ -1,9 +1,7 @@
 //! `mullion figure`: run a checkpoint on one image and save the stage-by-stage figure (and,
 //! when asked, the per-stage statistics) through the shared renderer.
 
-use crate::analysis::{
-    self, parse_map_kind, stage_stats, Colormap, ScaleSpec,
-};
+use crate::analysis::{self, parse_map_kind, stage_stats, Colormap, ScaleSpec};
 use crate::cli::{RunArgs, Session};
 use crate::error::{Error, Result};
 use crate::input;

@@ -34,6 +34,19 @@ pub const PALETTE: [[u8; 3]; 8] = [
     [200, 30, 30],   // red
 ];
 
+/// Plain names of the [`PALETTE`] colours, for captions.
+pub const PALETTE_NAMES: [&str; 8] = [
+    "orange", "sky blue", "magenta", "lime", "yellow", "violet", "white", "red",
+];
+
+/// A colour's palette name, or `#rrggbb` for a colour outside the palette.
+pub fn colour_name(c: [u8; 3]) -> String {
+    match PALETTE.iter().position(|&p| p == c) {
+        Some(i) => PALETTE_NAMES[i].to_string(),
+        None => format!("#{:02x}{:02x}{:02x}", c[0], c[1], c[2]),
+    }
+}
+
 /// The geometry of a region, in image pixel coordinates.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "kind", rename_all = "lowercase")]
@@ -108,10 +121,18 @@ impl Shape {
             }
             Shape::Polygon { points } => {
                 let first = points.first()?;
-                Some(points.iter().fold(
-                    [first[0], first[1], first[0], first[1]],
-                    |b, p| [b[0].min(p[0]), b[1].min(p[1]), b[2].max(p[0]), b[3].max(p[1])],
-                ))
+                Some(
+                    points
+                        .iter()
+                        .fold([first[0], first[1], first[0], first[1]], |b, p| {
+                            [
+                                b[0].min(p[0]),
+                                b[1].min(p[1]),
+                                b[2].max(p[0]),
+                                b[3].max(p[1]),
+                            ]
+                        }),
+                )
             }
         }
     }
@@ -303,7 +324,10 @@ impl Sidecar {
 
     /// The colour of label `name`, if it is defined.
     pub fn colour_of(&self, name: &str) -> Option<[u8; 3]> {
-        self.labels.iter().find(|l| l.name == name).map(|l| l.colour)
+        self.labels
+            .iter()
+            .find(|l| l.name == name)
+            .map(|l| l.colour)
     }
 
     /// Define label `name` (with the next palette colour) unless it exists; its colour.
@@ -533,6 +557,10 @@ fn parse(bytes: &[u8]) -> std::result::Result<Sidecar, String> {
 /// moved aside (see [`move_aside`]) and the error names the file, the problem and where the
 /// original now is.
 pub fn load_with_warnings(path: &Path) -> Result<Option<(Sidecar, Vec<String>)>> {
+    if path.is_dir() {
+        // Someone else's folder of that name is not ours to move.
+        return Err(Error::bad_file(path, "is a folder, not a regions file"));
+    }
     let problem = match std::fs::read(path) {
         Ok(bytes) => match parse(&bytes) {
             Ok(mut sc) => {
@@ -600,7 +628,11 @@ pub fn from_scene_labels(cells: &SceneLabels) -> Sidecar {
         sc.add_region(rect_box(c.rect), c.class.name(), &note);
     }
     for w in cells.weeds.iter().filter(|w| w.cell.is_none()) {
-        sc.add_region(rect_box(w.rect), CellClass::Weed.name(), "weed between cells");
+        sc.add_region(
+            rect_box(w.rect),
+            CellClass::Weed.name(),
+            "weed between cells",
+        );
     }
     sc
 }
@@ -736,7 +768,11 @@ mod tests {
         let p = Shape::Polygon {
             points: vec![[1.0, 2.0], [5.0, 2.0], [5.0, 4.0], [1.0, 4.0]],
         };
-        for rect in [[0.0, 0.0, 3.0, 3.0], [2.0, 2.5, 10.0, 3.0], [6.0, 0.0, 7.0, 9.0]] {
+        for rect in [
+            [0.0, 0.0, 3.0, 3.0],
+            [2.0, 2.5, 10.0, 3.0],
+            [6.0, 0.0, 7.0, 9.0],
+        ] {
             assert!((b.intersection_area(rect) - p.intersection_area(rect)).abs() < 1e-12);
         }
         assert_eq!(b.area(), 8.0);
@@ -794,7 +830,13 @@ mod tests {
         assert_eq!(sc.regions.len(), 1);
         assert!(h.redo(&mut sc));
         assert_eq!(sc.regions.len(), 2);
-        h.apply(&mut sc, |s| s.pins.push(Pin { id: 99, at: [1.0, 1.0], text: "n".into() }));
+        h.apply(&mut sc, |s| {
+            s.pins.push(Pin {
+                id: 99,
+                at: [1.0, 1.0],
+                text: "n".into(),
+            })
+        });
         assert!(!h.can_redo(), "a new edit drops the redo steps");
     }
 
@@ -816,19 +858,34 @@ mod tests {
         let mut sc = Sidecar::new("a.png", 10, 10);
         sc.regions.push(Region {
             id: 1,
-            shape: Shape::Box { x0: 8.0, y0: 8.0, x1: 12.0, y1: 3.0 },
+            shape: Shape::Box {
+                x0: 8.0,
+                y0: 8.0,
+                x1: 12.0,
+                y1: 3.0,
+            },
             label: "a".into(),
             note: String::new(),
         });
         sc.regions.push(Region {
             id: 1,
-            shape: Shape::Box { x0: 1.0, y0: 1.0, x1: 2.0, y1: 2.0 },
+            shape: Shape::Box {
+                x0: 1.0,
+                y0: 1.0,
+                x1: 2.0,
+                y1: 2.0,
+            },
             label: "b".into(),
             note: String::new(),
         });
         sc.regions.push(Region {
             id: 3,
-            shape: Shape::Box { x0: 20.0, y0: 1.0, x1: 22.0, y1: 2.0 },
+            shape: Shape::Box {
+                x0: 20.0,
+                y0: 1.0,
+                x1: 22.0,
+                y1: 2.0,
+            },
             label: "a".into(),
             note: String::new(),
         });
@@ -837,7 +894,12 @@ mod tests {
         assert_eq!(sc.regions.len(), 2);
         assert_eq!(
             sc.regions[0].shape,
-            Shape::Box { x0: 8.0, y0: 3.0, x1: 10.0, y1: 8.0 }
+            Shape::Box {
+                x0: 8.0,
+                y0: 3.0,
+                x1: 10.0,
+                y1: 8.0
+            }
         );
         assert_ne!(sc.regions[1].id, 1);
         assert_eq!(sc.labels.len(), 2);

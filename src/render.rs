@@ -631,15 +631,27 @@ pub fn figure_stages(
         for s in 0..n {
             let fit = crate::analysis::fit_pca(&crate::analysis::stage_tokens(out, s)?)?;
             raw.push(fit.rgb.clone());
-            stages.push(FigureStage { stage: s, map: fit.rgb, range: None, explained: Some(fit.explained) });
+            stages.push(FigureStage {
+                stage: s,
+                map: fit.rgb,
+                range: None,
+                explained: Some(fit.explained),
+            });
         }
         return Ok((raw, stages));
     }
-    let raw: Vec<Map> = (0..n).map(|s| kind.compute(out, s)).collect::<Result<_>>()?;
+    let raw: Vec<Map> = (0..n)
+        .map(|s| kind.compute(out, s))
+        .collect::<Result<_>>()?;
     let stages = crate::analysis::normalise_maps(&raw, spec)?
         .into_iter()
         .enumerate()
-        .map(|(s, (map, range))| FigureStage { stage: s, map, range: Some(range), explained: None })
+        .map(|(s, (map, range))| FigureStage {
+            stage: s,
+            map,
+            range: Some(range),
+            explained: None,
+        })
         .collect();
     Ok((raw, stages))
 }

@@ -8,7 +8,7 @@
 //! every run, through temporary files and renames.
 
 use crate::analysis::regions::{region_stats, RegionStats};
-use crate::analysis::{normalise_maps, parse_map_kind, Colormap, Map, MapKind, ScaleSpec};
+use crate::analysis::{parse_map_kind, Colormap, Map, MapKind, ScaleSpec};
 use crate::cli::{RunArgs, Session};
 use crate::error::{Error, Result};
 use crate::labels::{self, Shape, Sidecar};
@@ -252,8 +252,10 @@ pub fn list_images(dir: &Path) -> Result<Vec<PathBuf>> {
 }
 
 fn file_name(p: &Path) -> String {
-    p.file_name()
-        .map_or_else(|| p.display().to_string(), |n| n.to_string_lossy().into_owned())
+    p.file_name().map_or_else(
+        || p.display().to_string(),
+        |n| n.to_string_lossy().into_owned(),
+    )
 }
 
 fn rows_to_csv(rows: &[ReportRow]) -> Result<String> {
@@ -406,7 +408,7 @@ impl Context<'_> {
         let figure_path = self
             .figures_dir
             .as_ref()
-            .map(|d| d.join(format!("{name}.png")));
+            .map(|d| d.join(format!("{name}.figure.png")));
         // A sidecar that is there but unreadable is handled (and moved aside) by the loader.
         let bytes = std::fs::read(&sidecar_path).ok();
         if let (false, Some(b)) = (self.args.force, &bytes) {
@@ -442,13 +444,20 @@ impl Context<'_> {
                 ),
             ));
         }
-        let maps: Vec<Map> = (0..out.stages.len())
-            .map(|s| self.kind.compute(&out, s))
-            .collect::<Result<_>>()?;
+        // With figures, the shared preparation gives the raw maps and their display form at once.
+        let (maps, display) = if figure_path.is_some() {
+            let (raw, shown) = render::figure_stages(&out, self.kind.as_ref(), &figure_scale())?;
+            (raw, Some(shown))
+        } else {
+            let raw = (0..out.stages.len())
+                .map(|s| self.kind.compute(&out, s))
+                .collect::<Result<Vec<Map>>>()?;
+            (raw, None)
+        };
         let stats = region_stats(&out, &maps, &self.kind.id(), &sc.regions)?;
         let rows: Vec<ReportRow> = stats.iter().map(|s| ReportRow::new(&name, s)).collect();
-        if let Some(p) = &figure_path {
-            write_figure(self, image, &out, &maps, &sc, p)?;
+        if let (Some(p), Some(shown)) = (&figure_path, &display) {
+            write_figure(self, image, &out, shown, &sc, p)?;
         }
         // Hash the bytes the numbers came from (the loader has read the same file).
         let inputs = self.inputs(image, bytes.as_deref().unwrap_or_default())?;
@@ -506,38 +515,26 @@ pub fn outline_regions(image: &RgbImage, sc: &Sidecar) -> RgbImage {
     img
 }
 
+/// The colour scaling of report figures: the defaults of `mullion figure`, so both read the same.
+fn figure_scale() -> ScaleSpec {
+    ScaleSpec {
+        shared_across_stages: false,
+        log: false,
+        clip_percentiles: (1.0, 99.0),
+    }
+}
+
 fn write_figure(
     ctx: &Context,
     image_path: &Path,
     out: &crate::backbone::StageOutputs,
-    maps: &[Map],
+    stages: &[FigureStage],
     sc: &Sidecar,
     path: &Path,
 ) -> Result<()> {
     let image = crate::input::load_image(image_path)?;
     let annotated = outline_regions(&image, sc);
-    // The settings `mullion figure` uses by default, so both figures read the same.
-    let spec = ScaleSpec {
-        shared_across_stages: false,
-        log: false,
-        clip_percentiles: (1.0, 99.0),
-    };
-    let stages: Vec<FigureStage> = normalise_maps(maps, &spec)?
-        .into_iter()
-        .enumerate()
-        .map(|(s, (map, range))| FigureStage {
-            stage: s,
-            map,
-            range: Some(range),
-            explained: None,
-        })
-        .collect();
-    let ih = annotated.height();
-    let scale = if ih >= 256 {
-        1.0
-    } else {
-        256u32.div_ceil(ih.max(1)) as f32
-    };
+    let scale = render::default_figure_scale(annotated.height());
     let colormap = Colormap::Viridis;
     let style = PanelStyle {
         colormap,
@@ -551,22 +548,28 @@ fn write_figure(
     let mut used: Vec<&str> = sc.regions.iter().map(|r| r.label.as_str()).collect();
     used.sort();
     used.dedup();
+    let key: Vec<String> = used
+        .iter()
+        .map(|l| {
+            let c = sc.colour_of(l).unwrap_or(labels::PALETTE[0]);
+            format!("{l} {}", labels::colour_name(c))
+        })
+        .collect();
     let notes = vec![
         format!(
             "colour scale: per stage, linear, percentiles 1-99 ({}), values beyond clamp",
             colormap.name()
         ),
         format!(
-            "outlined on the image: {} regions ({}), one colour per label",
+            "outlines: {} labelled regions; {}",
             sc.regions.len(),
-            used.join(", ")
+            key.join(", ")
         ),
-        CAUTION.to_string(),
     ];
     let fig = render::compose_figure(&FigureSpec {
         image: &annotated,
         geometry: &out.geometry,
-        stages: &stages,
+        stages,
         style,
         checkpoint: file_name(&ctx.args.run.weights),
         map_label: ctx.kind.label(),

@@ -84,7 +84,12 @@ struct Trainable {
 }
 
 impl Trainable {
-    fn var(&self, name: String, shape: &[usize], init: impl FnOnce(usize, &mut rand::rngs::StdRng) -> Vec<f32>) -> Result<Tensor> {
+    fn var(
+        &self,
+        name: String,
+        shape: &[usize],
+        init: impl FnOnce(usize, &mut rand::rngs::StdRng) -> Vec<f32>,
+    ) -> Result<Tensor> {
         let n: usize = shape.iter().product();
         let data = init(n, &mut self.rng.borrow_mut());
         let var = Var::from_tensor(&Tensor::from_vec(data, shape, &Device::Cpu)?)?;
@@ -117,7 +122,9 @@ impl WeightSource for Trainable {
     }
     fn bias_table(&self, part: Part, heads: usize) -> Result<Tensor> {
         let rows = (2 * self.window.0 - 1) * (2 * self.window.1 - 1);
-        self.var(part.canonical(), &[rows, heads], |n, rng| normal(n, 0.02, rng))
+        self.var(part.canonical(), &[rows, heads], |n, rng| {
+            normal(n, 0.02, rng)
+        })
     }
 }
 
@@ -152,7 +159,11 @@ pub fn example(spec: &SceneSpec, model: &Backbone) -> Result<Example> {
     let g = model.geometry((spec.height as usize, spec.width as usize), None);
     let last = g.stages.last().expect("a stage");
     let labels = token_labels(&scene, last.grid, last.stride);
-    Ok(Example { image, labels, scene })
+    Ok(Example {
+        image,
+        labels,
+        scene,
+    })
 }
 
 /// The trainable model: backbone plus a per-token linear head on the last stage.
@@ -174,16 +185,31 @@ impl DemoModel {
         let backbone = Backbone::build(config.clone(), &src, false, true)?;
         let c = config.dim(config.n_stages() - 1);
         let k = CLASSES.len();
-        let head_w = src.var("head.cells.weight".into(), &[k, c], |n, rng| normal(n, (1.0 / c as f64).sqrt(), rng))?;
+        let head_w = src.var("head.cells.weight".into(), &[k, c], |n, rng| {
+            normal(n, (1.0 / c as f64).sqrt(), rng)
+        })?;
         let head_b = src.var("head.cells.bias".into(), &[k], |n, _| vec![0.0; n])?;
-        Ok(DemoModel { backbone, head_w, head_b, vars: src.vars.into_inner() })
+        Ok(DemoModel {
+            backbone,
+            head_w,
+            head_b,
+            vars: src.vars.into_inner(),
+        })
     }
 
     /// Logits `[tokens, classes]` of the last stage.
     pub fn logits(&self, image: &Tensor) -> Result<Tensor> {
-        let opts = ForwardOptions { final_norm: true, ..Default::default() };
-        let out = self.backbone.forward(image, &opts, &RunControl::default())?;
-        let last = out.final_norm.as_ref().ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
+        let opts = ForwardOptions {
+            final_norm: true,
+            ..Default::default()
+        };
+        let out = self
+            .backbone
+            .forward(image, &opts, &RunControl::default())?;
+        let last = out
+            .final_norm
+            .as_ref()
+            .ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
         let (h, w, c) = last.dims3()?;
         let x = last.reshape((h * w, c))?;
         Ok(x.matmul(&self.head_w.t()?)?.broadcast_add(&self.head_b)?)
@@ -194,7 +220,9 @@ impl DemoModel {
         let mut total: Option<Tensor> = None;
         for ex in batch {
             let logits = self.logits(&ex.image)?;
-            let keep: Vec<u32> = (0..ex.labels.len() as u32).filter(|&i| ex.labels[i as usize] != u32::MAX).collect();
+            let keep: Vec<u32> = (0..ex.labels.len() as u32)
+                .filter(|&i| ex.labels[i as usize] != u32::MAX)
+                .collect();
             if keep.is_empty() {
                 continue;
             }
@@ -207,7 +235,8 @@ impl DemoModel {
                 Some(t) => (t + l)?,
             });
         }
-        let total = total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
+        let total =
+            total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
         Ok((total / batch.len() as f64)?)
     }
 
@@ -236,8 +265,11 @@ impl DemoModel {
 
     /// Save as a safetensors checkpoint in timm's key layout (the head as `head.cells.*`).
     pub fn save(&self, path: &Path) -> Result<()> {
-        let map: std::collections::HashMap<String, Tensor> =
-            self.vars.iter().map(|(k, v)| (k.clone(), v.as_tensor().detach())).collect();
+        let map: std::collections::HashMap<String, Tensor> = self
+            .vars
+            .iter()
+            .map(|(k, v)| (k.clone(), v.as_tensor().detach()))
+            .collect();
         crate::cli::save_tensors(&map, path)
     }
 }
@@ -273,13 +305,27 @@ pub struct TrainLog {
 
 /// Train; save `early_step` and final weights into `out_dir` as `demo-early.safetensors` and
 /// `demo.safetensors`. `on_step(step, loss)` reports progress.
-pub fn train(spec: &TrainSpec, out_dir: Option<&Path>, mut on_step: impl FnMut(usize, f32)) -> Result<(DemoModel, TrainLog)> {
+pub fn train(
+    spec: &TrainSpec,
+    out_dir: Option<&Path>,
+    mut on_step: impl FnMut(usize, f32),
+) -> Result<(DemoModel, TrainLog)> {
     let model = DemoModel::new(spec.config.clone(), spec.seed)?;
-    let params = ParamsAdamW { lr: spec.lr, weight_decay: 0.01, ..Default::default() };
+    let params = ParamsAdamW {
+        lr: spec.lr,
+        weight_decay: 0.01,
+        ..Default::default()
+    };
     let mut opt = AdamW::new(model.vars(), params)?;
     let mut rng = rand::rngs::StdRng::seed_from_u64(spec.seed ^ 0x5eed);
     let start = std::time::Instant::now();
-    let mut log = TrainLog { steps: 0, seconds: 0.0, losses: Vec::new(), early: None, last: None };
+    let mut log = TrainLog {
+        steps: 0,
+        seconds: 0.0,
+        losses: Vec::new(),
+        early: None,
+        last: None,
+    };
     for step in 0..spec.steps {
         if let Some(limit) = spec.max_seconds {
             if start.elapsed().as_secs_f64() > limit {
@@ -288,7 +334,9 @@ pub fn train(spec: &TrainSpec, out_dir: Option<&Path>, mut on_step: impl FnMut(u
         }
         // Cosine decay to a tenth of the rate.
         let t = step as f64 / spec.steps.max(1) as f64;
-        opt.set_learning_rate(spec.lr * (0.1 + 0.9 * 0.5 * (1.0 + (std::f64::consts::PI * t).cos())));
+        opt.set_learning_rate(
+            spec.lr * (0.1 + 0.9 * 0.5 * (1.0 + (std::f64::consts::PI * t).cos())),
+        );
         let batch: Vec<Example> = (0..spec.batch)
             .map(|_| example(&training_spec(&mut rng, spec.sides), &model.backbone))
             .collect::<Result<_>>()?;
@@ -323,49 +371,94 @@ impl DemoModel {
         let all = candle_core::safetensors::load(path, &Device::Cpu)
             .map_err(|e| Error::bad_file(path, format!("cannot read: {e}")))?;
         let get = |k: &str| {
-            all.get(k).cloned().ok_or_else(|| Error::bad_file(path, format!("no {k}: not a demo checkpoint")))
+            all.get(k)
+                .cloned()
+                .ok_or_else(|| Error::bad_file(path, format!("no {k}: not a demo checkpoint")))
         };
-        Ok(DemoModel { backbone, head_w: get("head.cells.weight")?, head_b: get("head.cells.bias")?, vars: BTreeMap::new() })
+        Ok(DemoModel {
+            backbone,
+            head_w: get("head.cells.weight")?,
+            head_b: get("head.cells.bias")?,
+            vars: BTreeMap::new(),
+        })
     }
 }
 
 /// Last-stage token L2 norms of an example and whether each token's centre is on a plant
 /// (healthy, wilted or weed: 1), on soil or tray (0), or unscored (padding, empty cells: None).
 pub fn norms_and_plants(backbone: &Backbone, ex: &Example) -> Result<Vec<(f32, Option<bool>)>> {
-    let out = backbone.forward(&ex.image, &ForwardOptions::default(), &RunControl::default())?;
-    let norms: Vec<f32> = out.stages.last().expect("a stage").sqr()?.sum(2)?.sqrt()?.flatten_all()?.to_vec1()?;
+    let out = backbone.forward(
+        &ex.image,
+        &ForwardOptions::default(),
+        &RunControl::default(),
+    )?;
+    let norms: Vec<f32> = out
+        .stages
+        .last()
+        .expect("a stage")
+        .sqr()?
+        .sum(2)?
+        .sqrt()?
+        .flatten_all()?
+        .to_vec1()?;
     Ok(norms
         .into_iter()
         .zip(&ex.labels)
-        .map(|(n, &l)| (n, match l {
-            0 => Some(false),
-            2..=4 => Some(true),
-            _ => None,
-        }))
+        .map(|(n, &l)| {
+            (
+                n,
+                match l {
+                    0 => Some(false),
+                    2..=4 => Some(true),
+                    _ => None,
+                },
+            )
+        })
         .collect())
 }
 
 /// Probability that a random plant token has a larger value than a random soil token (ties
 /// count one half): the Mann-Whitney form of the AUROC.
 pub fn auroc_counted(pairs: &[(f32, Option<bool>)]) -> Option<f64> {
-    let pos: Vec<f32> = pairs.iter().filter(|p| p.1 == Some(true)).map(|p| p.0).collect();
-    let neg: Vec<f32> = pairs.iter().filter(|p| p.1 == Some(false)).map(|p| p.0).collect();
+    let pos: Vec<f32> = pairs
+        .iter()
+        .filter(|p| p.1 == Some(true))
+        .map(|p| p.0)
+        .collect();
+    let neg: Vec<f32> = pairs
+        .iter()
+        .filter(|p| p.1 == Some(false))
+        .map(|p| p.0)
+        .collect();
     if pos.is_empty() || neg.is_empty() {
         return None;
     }
     let mut wins = 0f64;
     for &a in &pos {
         for &b in &neg {
-            wins += if a > b { 1.0 } else if a == b { 0.5 } else { 0.0 };
+            wins += if a > b {
+                1.0
+            } else if a == b {
+                0.5
+            } else {
+                0.0
+            };
         }
     }
     Some(wins / (pos.len() * neg.len()) as f64)
 }
 
 /// The model card: data, training, held-out accuracy and the norm AUROC, early vs final.
-pub fn model_card(spec: &TrainSpec, model: &DemoModel, log: &TrainLog, dir: &Path) -> Result<String> {
-    let held: Vec<Example> =
-        held_out_specs(20).iter().map(|s| example(s, &model.backbone)).collect::<Result<_>>()?;
+pub fn model_card(
+    spec: &TrainSpec,
+    model: &DemoModel,
+    log: &TrainLog,
+    dir: &Path,
+) -> Result<String> {
+    let held: Vec<Example> = held_out_specs(20)
+        .iter()
+        .map(|s| example(s, &model.backbone))
+        .collect::<Result<_>>()?;
     let mut rows = Vec::new();
     let early = dir.join("demo-early.safetensors");
     let mut models: Vec<(&str, DemoModel)> = Vec::new();
@@ -386,7 +479,11 @@ pub fn model_card(spec: &TrainSpec, model: &DemoModel, log: &TrainLog, dir: &Pat
             .zip(CLASSES)
             .map(|((r, n), c)| format!("{c} {:.0}% of {n}", 100.0 * *r as f64 / (*n).max(1) as f64))
             .collect();
-        rows.push(format!("| {name} | {:.1}% | {} | {au:.3} |", 100.0 * acc, per.join(", ")));
+        rows.push(format!(
+            "| {name} | {:.1}% | {} | {au:.3} |",
+            100.0 * acc,
+            per.join(", ")
+        ));
     }
     let params = spec.config.parameter_count(true, Some(CLASSES.len()));
     let last_loss = log.losses.last().map_or(f32::NAN, |l| l.1);
@@ -446,13 +543,25 @@ mod tests {
     // fixed batch): on tiny images, a few steps lower the loss on that batch.
     #[test]
     fn a_few_steps_lower_the_loss_on_a_fixed_batch() {
-        let config = Config { embed_dim: 16, depths: vec![2, 2], heads: vec![1, 2], ..demo_config() };
+        let config = Config {
+            embed_dim: 16,
+            depths: vec![2, 2],
+            heads: vec![1, 2],
+            ..demo_config()
+        };
         let model = DemoModel::new(config, 1).unwrap();
         let batch: Vec<Example> = [(64, 64, 11), (72, 56, 12)]
             .iter()
             .map(|&(w, h, s)| example(&SceneSpec::new("t", w, h, s), &model.backbone).unwrap())
             .collect();
-        let mut opt = AdamW::new(model.vars(), ParamsAdamW { lr: 3e-3, ..Default::default() }).unwrap();
+        let mut opt = AdamW::new(
+            model.vars(),
+            ParamsAdamW {
+                lr: 3e-3,
+                ..Default::default()
+            },
+        )
+        .unwrap();
         let first = model.loss(&batch).unwrap().to_scalar::<f32>().unwrap();
         for _ in 0..8 {
             let l = model.loss(&batch).unwrap();
@@ -467,7 +576,10 @@ mod tests {
         let scene = generate(&SceneSpec::new("t", 224, 224, 5));
         let labels = token_labels(&scene, (7, 7), 32);
         assert_eq!(labels.len(), 49);
-        assert!(labels.iter().any(|&l| l == 2), "some token centre on a healthy seedling");
+        assert!(
+            labels.iter().any(|&l| l == 2),
+            "some token centre on a healthy seedling"
+        );
         // A grid larger than the image marks the overhang as unscored.
         let labels = token_labels(&scene, (8, 8), 32);
         assert_eq!(labels.iter().filter(|&&l| l == u32::MAX).count(), 15);

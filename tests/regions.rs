@@ -92,7 +92,11 @@ fn auroc_matches_scikit_learn_roc_auc_score() {
             case["name"]
         );
         let pairs = pair_count_auc(&pos, &neg);
-        assert!((got - pairs).abs() < 1e-12, "{}: pair count {pairs}", case["name"]);
+        assert!(
+            (got - pairs).abs() < 1e-12,
+            "{}: pair count {pairs}",
+            case["name"]
+        );
     }
 }
 
@@ -206,7 +210,12 @@ fn regions_partly_outside_the_image_are_clipped_with_a_warning() {
     for (r, e) in sc.regions.iter().zip(&expected) {
         let b = r.shape.bounds().unwrap();
         assert!(b[0] >= 0.0 && b[1] >= 0.0 && b[2] <= 10.0 && b[3] <= 10.0);
-        assert!(close(r.shape.area(), *e, 1e-9), "{}: {}", r.label, r.shape.area());
+        assert!(
+            close(r.shape.area(), *e, 1e-9),
+            "{}: {}",
+            r.label,
+            r.shape.area()
+        );
     }
     // A clean sidecar gives no warning and stays as it is.
     let before = sc.clone();
@@ -234,7 +243,10 @@ fn token_weights_conserve_the_covered_area() {
         // Scale the 10x10 fixture shapes up to span the image and beyond.
         let s = match case_shape(case) {
             Shape::Polygon { points } => Shape::Polygon {
-                points: points.iter().map(|p| [p[0] * 15.3 + 3.1, p[1] * 9.7 - 1.3]).collect(),
+                points: points
+                    .iter()
+                    .map(|p| [p[0] * 15.3 + 3.1, p[1] * 9.7 - 1.3])
+                    .collect(),
             },
             Shape::Box { x0, y0, x1, y1 } => Shape::Box {
                 x0: x0 * 15.3 + 3.1,
@@ -372,7 +384,11 @@ fn sidecar_schema_and_version_are_checked() {
 fn malformed_and_truncated_sidecars_are_moved_aside() {
     let dir = tempfile::tempdir().unwrap();
     let good = labels::to_json(&sample_sidecar()).unwrap();
-    expect_unreadable(dir.path(), &good.as_bytes()[..good.len() / 2], "not valid JSON");
+    expect_unreadable(
+        dir.path(),
+        &good.as_bytes()[..good.len() / 2],
+        "not valid JSON",
+    );
     expect_unreadable(dir.path(), b"", "not valid JSON");
     expect_unreadable(dir.path(), b"[1, 2, 3]", "JSON object");
     expect_unreadable(dir.path(), &[0xff, 0xfe, 0x00, 0x7b], "UTF-8");
@@ -445,13 +461,21 @@ fn demo_cells_become_labelled_boxes() {
 #[test]
 fn committed_sample_sidecars_are_current() {
     let mut checked = 0;
-    for name in ["tray-01-333x250", "tray-03-97x160", "tray-05-224x224", "tray-06-224x224"] {
+    for name in [
+        "tray-01-333x250",
+        "tray-03-97x160",
+        "tray-05-224x224",
+        "tray-06-224x224",
+    ] {
         let path = labels::sidecar_path(&sample_data().join(format!("{name}.png")), None);
         let on_disk = labels::load_with_warnings(&path).unwrap().unwrap();
         assert!(on_disk.1.is_empty(), "{:?}", on_disk.1);
         let mut fresh = labels::from_scene_labels(&cells_of(name));
         labels::validate(&mut fresh);
-        assert_eq!(on_disk.0, fresh, "{name}: rerun the ignored test regenerate_sample_sidecars");
+        assert_eq!(
+            on_disk.0, fresh,
+            "{name}: rerun the ignored test regenerate_sample_sidecars"
+        );
         checked += 1;
     }
     assert_eq!(checked, 4);
@@ -472,7 +496,11 @@ fn regenerate_sample_sidecars() {
 // ---------------------------------------------------------------------------------------------
 // The report command
 
-const IMAGES: [&str; 3] = ["tray-03-97x160.png", "tray-05-224x224.png", "tray-06-224x224.png"];
+const IMAGES: [&str; 3] = [
+    "tray-03-97x160.png",
+    "tray-05-224x224.png",
+    "tray-06-224x224.png",
+];
 
 struct Setup {
     _dir: tempfile::TempDir,
@@ -570,7 +598,11 @@ fn report_table_summary_rerun_and_force() {
         assert!(r.ratio.unwrap() > 0.0, "{r:?}");
         assert!(r.coverage > 0.0 && r.coverage < 1.0, "{r:?}");
     }
-    assert!(with_auroc * 2 > rows.len(), "{with_auroc} of {}", rows.len());
+    assert!(
+        with_auroc * 2 > rows.len(),
+        "{with_auroc} of {}",
+        rows.len()
+    );
 
     let summary: Value =
         serde_json::from_str(&std::fs::read_to_string(s.out.join("summary.json")).unwrap())
@@ -586,7 +618,10 @@ fn report_table_summary_rerun_and_force() {
     assert_eq!(total as usize, rows.len());
     // The summary's means are the means of the table's rows.
     let g = &groups[0];
-    let (label, stage) = (g["label"].as_str().unwrap(), g["stage"].as_u64().unwrap() as usize);
+    let (label, stage) = (
+        g["label"].as_str().unwrap(),
+        g["stage"].as_u64().unwrap() as usize,
+    );
     let vals: Vec<f64> = rows
         .iter()
         .filter(|r| r.label == label && r.stage == stage)
@@ -604,7 +639,9 @@ fn report_table_summary_rerun_and_force() {
     let kind = parse_map_kind("norm").unwrap();
     for name in IMAGES {
         let img = s.images.join(name);
-        let sc = labels::load(&labels::sidecar_path(&img, None)).unwrap().unwrap();
+        let sc = labels::load(&labels::sidecar_path(&img, None))
+            .unwrap()
+            .unwrap();
         let out = session.run_image(&img, false, false).unwrap();
         let maps: Vec<Map> = (0..out.stages.len())
             .map(|i| kind.compute(&out, i).unwrap())
@@ -677,7 +714,11 @@ fn report_lists_a_broken_image_and_does_the_others() {
     assert_eq!(o.computed, IMAGES);
     assert_eq!(o.summary.failed.len(), 1);
     assert_eq!(o.summary.failed[0].image, "broken.png");
-    assert!(o.summary.failed[0].error.contains("broken.png"), "{:?}", o.summary.failed);
+    assert!(
+        o.summary.failed[0].error.contains("broken.png"),
+        "{:?}",
+        o.summary.failed
+    );
     assert_eq!(o.summary.without_regions, ["unlabelled.png"]);
     let rows = report_cli::read_rows(&o.csv).unwrap();
     assert!(rows.iter().all(|r| r.image != "broken.png"));
@@ -702,8 +743,11 @@ fn report_with_a_regions_folder_and_figures() {
     std::fs::create_dir(&project).unwrap();
     for name in IMAGES {
         let from = labels::sidecar_path(&s.images.join(name), None);
-        std::fs::rename(&from, labels::sidecar_path(&s.images.join(name), Some(&project)))
-            .unwrap();
+        std::fs::rename(
+            &from,
+            labels::sidecar_path(&s.images.join(name), Some(&project)),
+        )
+        .unwrap();
     }
     let mut args = ReportArgs::new(s.run.clone(), s.images.clone(), s.out.clone());
     let without = report_cli::run_report(&args).unwrap();
@@ -713,11 +757,16 @@ fn report_with_a_regions_folder_and_figures() {
     let o = report_cli::run_report(&args).unwrap();
     assert_eq!(o.computed, IMAGES);
     for name in IMAGES {
-        let fig = image::open(s.out.join("figures").join(format!("{name}.png"))).unwrap();
+        let fig = image::open(s.out.join("figures").join(format!("{name}.figure.png"))).unwrap();
         assert!(fig.width() > 300 && fig.height() > 200);
     }
     // Figures count as part of being done: a missing one is made again.
-    std::fs::remove_file(s.out.join("figures").join(format!("{}.png", IMAGES[2]))).unwrap();
+    std::fs::remove_file(
+        s.out
+            .join("figures")
+            .join(format!("{}.figure.png", IMAGES[2])),
+    )
+    .unwrap();
     let again = report_cli::run_report(&args).unwrap();
     assert_eq!(again.computed, [IMAGES[2]]);
 }
@@ -734,4 +783,56 @@ fn report_rejects_colour_maps_and_empty_folders() {
     let args = ReportArgs::new(s.run.clone(), empty.clone(), s.out.clone());
     let err = report_cli::run_report(&args).unwrap_err().to_string();
     assert!(err.contains("no images") && err.contains("empty"), "{err}");
+}
+
+#[test]
+fn report_options_parse() {
+    use clap::{CommandFactory, Parser};
+    #[derive(Parser, Debug)]
+    struct Cli {
+        #[command(flatten)]
+        report: ReportArgs,
+    }
+    // clap checks its own definitions only in debug builds; ask for it here.
+    Cli::command().debug_assert();
+    let c = Cli::try_parse_from([
+        "report",
+        "--weights",
+        "w.safetensors",
+        "--images",
+        "imgs",
+        "--out",
+        "res",
+        "--regions",
+        "proj",
+        "--map",
+        "channel:3",
+        "--figures",
+        "--force",
+    ])
+    .unwrap();
+    let r = c.report;
+    assert_eq!(r.run.weights, PathBuf::from("w.safetensors"));
+    assert_eq!(r.images, PathBuf::from("imgs"));
+    assert_eq!(r.out, PathBuf::from("res"));
+    assert_eq!(r.regions, Some(PathBuf::from("proj")));
+    assert_eq!(r.map, "channel:3");
+    assert!(r.figures && r.force);
+    let d = Cli::try_parse_from(["report", "--weights", "w", "--images", "i", "--out", "o"])
+        .unwrap()
+        .report;
+    assert_eq!(
+        (d.map.as_str(), d.figures, d.force, d.regions),
+        ("norm", false, false, None)
+    );
+}
+
+#[test]
+fn a_folder_in_the_sidecar_place_is_refused_not_moved() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("x.png.regions.json");
+    std::fs::create_dir(&path).unwrap();
+    let err = labels::load(&path).unwrap_err().to_string();
+    assert!(err.contains("folder"), "{err}");
+    assert!(path.is_dir());
 }

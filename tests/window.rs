@@ -143,3 +143,99 @@ fn a_newer_request_supersedes_and_bad_files_only_message() {
         (160, 97)
     );
 }
+
+/// Draw a box on the lens, name its label, see its row in the statistics panel, undo, redo;
+/// the sidecar on disk follows every step.
+#[test]
+fn draw_name_stats_undo_redo() {
+    let dir = tempfile::tempdir().unwrap();
+    let img = dir.path().join("tray.png");
+    std::fs::copy(root().join("tests/fixtures/tf4_odd/input.png"), &img).unwrap();
+    let mut h = harness(Workbench::new(Settings::default()));
+    h.run_steps(1);
+    h.state_mut()
+        .open_paths(&[root().join("tests/fixtures/tf4_odd/weights.safetensors")]);
+    h.state_mut().open_paths(&[img.clone()]);
+    wait(&mut h);
+
+    // A label of our own, then the box tool.
+    h.get_by_label("New label").focus();
+    h.get_by_label("New label").type_text("wilted leaf");
+    h.run_steps(2);
+    h.get_by_label("Add label").click();
+    h.run_steps(2);
+    assert_eq!(h.state().regions.label, "wilted leaf");
+    h.get_by_label("Box").click();
+    h.run_steps(2);
+
+    // Drag across the middle of the lens.
+    // The lens fills the central area below its title; its picture is centred there.
+    let title = h.get_by_label_contains("Lens — stage").rect();
+    let right = h.get_by_label("Regions").rect().left();
+    let cx = (title.left() + right) / 2.0;
+    let (a, b) = (
+        egui::pos2(cx - 40.0, title.bottom() + 100.0),
+        egui::pos2(cx + 40.0, title.bottom() + 220.0),
+    );
+    h.hover_at(a);
+    h.run_steps(1);
+    h.drag_at(a);
+    h.run_steps(1);
+    for k in 1..=5 {
+        h.hover_at(a + (b - a) * (k as f32 / 5.0));
+        h.run_steps(1);
+    }
+    h.drop_at(b);
+    h.run_steps(3);
+    let regions = h.state().regions.sidecar.as_ref().unwrap().regions.clone();
+    assert_eq!(regions.len(), 1, "messages: {:?}", h.state().messages);
+    assert_eq!(regions[0].label, "wilted leaf");
+
+    // Its rows (one per stage) are in the statistics panel.
+    h.run_steps(3);
+    let row = format!("wilted leaf #{}", regions[0].id);
+    assert_eq!(h.query_all_by_label(&row).count(), 3, "one row per stage");
+    assert_eq!(h.state().regions.stats.len(), 3);
+    assert!(h
+        .state()
+        .regions
+        .stats
+        .iter()
+        .all(|s| s.auroc.is_some_and(|a| (0.0..=1.0).contains(&a))));
+
+    // Saved next to the image, atomically, as the user works.
+    let sidecar = dir.path().join("tray.png.regions.json");
+    let on_disk = mullion::labels::load(&sidecar).unwrap().unwrap();
+    assert_eq!(on_disk.regions.len(), 1);
+
+    h.get_by_label("Undo").click();
+    h.run_steps(3);
+    assert!(h
+        .state()
+        .regions
+        .sidecar
+        .as_ref()
+        .unwrap()
+        .regions
+        .is_empty());
+    assert_eq!(h.query_all_by_label(&row).count(), 0);
+    assert!(mullion::labels::load(&sidecar)
+        .unwrap()
+        .unwrap()
+        .regions
+        .is_empty());
+
+    h.get_by_label("Redo").click();
+    h.run_steps(3);
+    assert_eq!(h.state().regions.sidecar.as_ref().unwrap().regions.len(), 1);
+    assert_eq!(h.query_all_by_label(&row).count(), 3);
+
+    // Reopening the image restores the regions.
+    let mut h2 = harness(Workbench::new(Settings::default()));
+    h2.run_steps(1);
+    h2.state_mut().open_paths(&[img]);
+    assert_eq!(
+        h2.state().regions.sidecar.as_ref().unwrap().regions.len(),
+        1
+    );
+}

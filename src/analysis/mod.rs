@@ -8,8 +8,8 @@
 //! are never part of a stage output, so every value belongs to a real token.
 
 pub mod colormap;
-pub mod regions;
 mod colormap_data;
+pub mod regions;
 pub mod scale;
 pub mod stats;
 

@@ -125,7 +125,14 @@ fn stats_from_weights(
     weights: &[f64],
     values: &[f32],
     image_token: &[bool],
-) -> (Option<f64>, Option<f64>, Option<f64>, Option<f64>, usize, f64) {
+) -> (
+    Option<f64>,
+    Option<f64>,
+    Option<f64>,
+    Option<f64>,
+    usize,
+    f64,
+) {
     let (mut sw, mut swv, mut sow, mut sowv) = (0.0f64, 0.0f64, 0.0f64, 0.0f64);
     let mut inside = Vec::new();
     let mut outside = Vec::new();
@@ -152,7 +159,11 @@ fn stats_from_weights(
         (Some(i), Some(o)) if o != 0.0 => Some(i / o),
         _ => None,
     };
-    let coverage = if n_image > 0 { sw / n_image as f64 } else { 0.0 };
+    let coverage = if n_image > 0 {
+        sw / n_image as f64
+    } else {
+        0.0
+    };
     (
         inside_mean,
         outside_mean,

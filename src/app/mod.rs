@@ -5,6 +5,7 @@
 //! request cancels the pending one), results are cached per (image, checkpoint, input policy),
 //! and panels only read them.
 
+pub mod regions;
 pub mod settings;
 mod view;
 
@@ -103,6 +104,7 @@ pub struct Workbench {
     incoming_rx: Receiver<Incoming>,
     repaint: Option<egui::Context>,
     view: view::ViewState,
+    pub regions: regions::RegionsState,
 }
 
 /// How many results the cache keeps.
@@ -130,6 +132,7 @@ impl Workbench {
             incoming_rx,
             repaint: None,
             view: view::ViewState::default(),
+            regions: regions::RegionsState::default(),
         }
     }
 
@@ -186,6 +189,7 @@ impl Workbench {
         match input::load_image(&path) {
             Ok(pixels) => {
                 Settings::remember(&mut self.settings.recent_images, &path);
+                self.open_regions(&path, pixels.dimensions());
                 self.image = Some(LoadedImage { path, pixels });
                 self.request();
             }
@@ -494,9 +498,12 @@ impl Workbench {
             self.open_paths(&dropped);
         }
         view::shortcuts(self, ui);
+        view::refresh(self, ui.ctx());
+        self.refresh_region_stats();
         view::top_bar(self, ui);
         view::message_area(self, ui);
         view::side_controls(self, ui);
+        regions::panel(self, ui);
         view::central(self, ui);
         if self.show_help {
             view::help_overlay(self, ui);
@@ -508,6 +515,11 @@ impl Workbench {
             ui.ctx()
                 .request_repaint_after(std::time::Duration::from_millis(50));
         }
+    }
+
+    /// The raw (unscaled) maps of the current result, one per stage.
+    pub fn view_raw_maps(&self) -> Vec<crate::analysis::Map> {
+        self.view.raw_maps().to_vec()
     }
 
     /// Save the current view as an annotated PNG and the per-stage stats beside it.

@@ -37,6 +37,10 @@ impl ViewState {
     pub fn invalidate(&mut self) {
         self.made_for = None;
     }
+
+    pub fn raw_maps(&self) -> &[Map] {
+        &self.raw
+    }
 }
 
 /// The map kind's command-line name for the current settings.
@@ -113,7 +117,7 @@ fn signature(bench: &Workbench) -> Option<String> {
 }
 
 /// Re-render the pictures when the result or a setting changed.
-fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
+pub fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
     let Some(sig) = signature(bench) else { return };
     if bench.view.made_for.as_deref() == Some(sig.as_str()) {
         return;
@@ -178,7 +182,11 @@ fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
                 Some(r) => render::render_legend(colormap, r, 240, 40),
                 None => render::render_rgb_legend(st.explained.as_deref(), 240, 40),
             };
-            ctx.load_texture(format!("legend{}", st.stage), to_color_image(&img), TextureOptions::LINEAR)
+            ctx.load_texture(
+                format!("legend{}", st.stage),
+                to_color_image(&img),
+                TextureOptions::LINEAR,
+            )
         })
         .collect();
     bench.view.stages = textures;
@@ -187,7 +195,7 @@ fn refresh(bench: &mut Workbench, ctx: &egui::Context) {
 }
 
 /// Keyboard shortcuts (shown in the help overlay).
-pub const SHORTCUTS: [(&str, &str); 10] = [
+pub const SHORTCUTS: [(&str, &str); 14] = [
     ("N / B", "next / previous image in the list"),
     ("0 - 9", "put stage 0-9 in the lens"),
     ("W", "regular window grid on / off"),
@@ -197,6 +205,10 @@ pub const SHORTCUTS: [(&str, &str); 10] = [
     ("F", "fit the lens to its area"),
     ("Ctrl+S", "save figure and statistics"),
     ("Esc", "cancel the running forward pass"),
+    ("Ctrl+Z / Ctrl+Y", "undo / redo a region edit"),
+    ("Delete", "delete the picked region"),
+    ("Enter", "close the polygon being drawn"),
+    ("double-click", "close the polygon being drawn"),
     ("F1", "this help"),
 ];
 
@@ -256,6 +268,22 @@ pub fn shortcuts(bench: &mut Workbench, ui: &mut egui::Ui) {
     }
     if pressed(Key::Escape) {
         bench.cancel_pending();
+    }
+    if ctrl && pressed(Key::Z) {
+        bench.undo_regions();
+    }
+    if ctrl && pressed(Key::Y) {
+        bench.redo_regions();
+    }
+    if pressed(Key::Delete) {
+        if let Some(id) = bench.regions.selected.take() {
+            bench.edit_regions(|sc| {
+                sc.remove_region(id);
+            });
+        }
+    }
+    if pressed(Key::Enter) {
+        super::regions::finish_polygon(bench);
     }
     if pressed(Key::F1) {
         bench.show_help ^= true;
@@ -619,7 +647,6 @@ fn crosshair(ui: &egui::Ui, rect: Rect, canvas: (f32, f32), hover: Option<(f32, 
 }
 
 pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
-    refresh(bench, ui.ctx());
     egui::CentralPanel::default().show(ui, |ui| {
         let Some(shown) = &bench.shown else {
             ui.centered_and_justified(|ui| {
@@ -671,14 +698,23 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
                     };
                     if let Some(tex) = tex {
                         let resp = ui
-                            .add(egui::Image::new((tex.id(), size)).sense(Sense::click()))
+                            .add(egui::Image::new((tex.id(), size)).sense(Sense::click_and_drag()))
                             .on_hover_text_at_pointer(title.clone());
                         if let Some(p) = resp.hover_pos() {
                             new_hover = Some(to_image_px(resp.rect, canvas, p));
                         }
-                        if resp.clicked() && idx > 0 {
+                        let picking = bench.regions.tool == super::regions::Tool::Pick;
+                        if resp.clicked() && idx > 0 && picking {
                             bench.settings.focus_stage = idx - 1;
                         }
+                        super::regions::interact(bench, &resp, resp.rect, canvas);
+                        super::regions::paint(
+                            bench,
+                            &ui.painter_at(resp.rect),
+                            resp.rect,
+                            canvas,
+                            None,
+                        );
                         crosshair(ui, resp.rect, canvas, bench.view.hover);
                     }
                     if idx > 0 {
@@ -711,7 +747,7 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
         });
         let area = ui.available_rect_before_wrap();
         let resp = ui.allocate_rect(area, Sense::click_and_drag());
-        if let Some(tex) = &bench.view.lens {
+        if let Some(tex) = bench.view.lens.clone() {
             let (h, w) = render::canvas_size(&geometry.stages[focus]);
             let canvas = (w as f32, h as f32);
             if bench.view.zoom <= 0.0 {
@@ -723,12 +759,15 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
                     bench.view.zoom = (bench.view.zoom * (1.0 + scroll * 0.002)).clamp(0.2, 40.0);
                 }
             }
-            if resp.dragged() {
-                bench.view.pan += resp.drag_delta();
-            }
             let fit = (area.width() / canvas.0).min(area.height() / canvas.1);
             let size = Vec2::new(canvas.0, canvas.1) * fit * bench.view.zoom;
             let rect = Rect::from_center_size(area.center() + bench.view.pan, size);
+            // Drawing tools take the drag; picking drags a region, or pans where there is none.
+            super::regions::interact(bench, &resp, rect, canvas);
+            let picking = bench.regions.tool == super::regions::Tool::Pick;
+            if resp.dragged() && picking && !bench.regions.is_grabbing() {
+                bench.view.pan += resp.drag_delta();
+            }
             let painter = ui.painter_at(area);
             painter.image(
                 tex.id(),
@@ -736,6 +775,7 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
                 Rect::from_min_max(Pos2::ZERO, Pos2::new(1.0, 1.0)),
                 Color32::WHITE,
             );
+            super::regions::paint(bench, &painter, rect, canvas, Some(focus));
             if let Some(p) = resp.hover_pos() {
                 new_hover = Some(to_image_px(rect, canvas, p));
             }

@@ -37,7 +37,12 @@ impl LayerNorm {
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
         // The fused kernel has no backward pass; training (tracked tensors) takes the composed one.
         if x.track_op() || self.weight.track_op() {
-            return Ok(candle_nn::ops::layer_norm_slow(x, &self.weight, &self.bias, LN_EPS)?);
+            return Ok(candle_nn::ops::layer_norm_slow(
+                x,
+                &self.weight,
+                &self.bias,
+                LN_EPS,
+            )?);
         }
         Ok(candle_nn::ops::layer_norm(
             &x.contiguous()?,
@@ -58,8 +63,16 @@ pub struct Linear {
 
 impl Linear {
     pub fn from_weight(weight: &Tensor, bias: Option<Tensor>) -> Result<Self> {
-        let weight_t = if weight.track_op() { None } else { Some(weight.t()?.contiguous()?) };
-        Ok(Linear { weight: weight.clone(), weight_t, bias })
+        let weight_t = if weight.track_op() {
+            None
+        } else {
+            Some(weight.t()?.contiguous()?)
+        };
+        Ok(Linear {
+            weight: weight.clone(),
+            weight_t,
+            bias,
+        })
     }
 
     pub fn new(
