@@ -38,6 +38,8 @@ pub enum Command {
     Summary(SummaryArgs),
     /// Save the stage-by-stage figure of one image (and, if asked, per-stage statistics).
     Figure(crate::figure_cli::FigureArgs),
+    /// Tabulate, per labelled region of a folder of images, how each stage responds inside it.
+    Report(crate::report_cli::ReportArgs),
     /// Open the window on the given images or folders.
     Open(OpenArgs),
     /// Regenerate the synthetic demo images (seedling trays) and their cell labels.
@@ -53,13 +55,13 @@ pub struct TrainDemoArgs {
     #[arg(long, default_value = "sample-data", value_name = "DIR")]
     pub out: PathBuf,
     /// Optimisation steps.
-    #[arg(long, default_value_t = 700)]
+    #[arg(long, default_value_t = 900)]
     pub steps: usize,
     /// Images per step.
-    #[arg(long, default_value_t = 6)]
+    #[arg(long, default_value_t = 4)]
     pub batch: usize,
     /// Stop after this many minutes even if steps remain.
-    #[arg(long, default_value_t = 28.0)]
+    #[arg(long, default_value_t = 25.0)]
     pub minutes: f64,
 }
 

@@ -12,6 +12,7 @@ fn main() -> ExitCode {
         Some(Command::Bench(a)) => cli::bench(a),
         Some(Command::Summary(a)) => cli::summary(a),
         Some(Command::Figure(a)) => mullion::figure_cli::figure(a),
+        Some(Command::Report(a)) => mullion::report_cli::report(a),
         Some(Command::Open(a)) => cli::open(a),
         Some(Command::SampleData(a)) => cli::sample_data(a),
         Some(Command::TrainDemo(a)) => cli::train_demo(a),

@@ -65,10 +65,10 @@ impl Default for TrainSpec {
     fn default() -> Self {
         TrainSpec {
             config: demo_config(),
-            steps: 700,
-            batch: 6,
-            sides: (160, 288),
-            lr: 1e-3,
+            steps: 900,
+            batch: 4,
+            sides: (160, 256),
+            lr: 6e-4,
             seed: 20261201,
             early_step: Some(15),
             max_seconds: None,
@@ -133,7 +133,21 @@ impl WeightSource for Trainable {
 pub struct Example {
     pub image: Tensor,
     pub labels: Vec<u32>,
+    /// The same for the stage before the last (the auxiliary head).
+    pub aux_labels: Option<Vec<u32>>,
     pub scene: Scene,
+}
+
+/// Cross-entropy over the tokens whose label is not `u32::MAX`; `None` when there are none.
+fn scored_cross_entropy(logits: &Tensor, labels: &[u32]) -> Result<Option<Tensor>> {
+    let keep: Vec<u32> = (0..labels.len() as u32).filter(|&i| labels[i as usize] != u32::MAX).collect();
+    if keep.is_empty() {
+        return Ok(None);
+    }
+    let target: Vec<u32> = keep.iter().map(|&i| labels[i as usize]).collect();
+    let idx = Tensor::from_vec(keep, target.len(), &Device::Cpu)?;
+    let target = Tensor::from_vec(target.clone(), target.len(), &Device::Cpu)?;
+    Ok(Some(candle_nn::loss::cross_entropy(&logits.index_select(&idx, 0)?, &target)?))
 }
 
 /// Labels of the last-stage tokens of a scene: the class under each token's centre pixel.
@@ -159,11 +173,11 @@ pub fn example(spec: &SceneSpec, model: &Backbone) -> Result<Example> {
     let g = model.geometry((spec.height as usize, spec.width as usize), None);
     let last = g.stages.last().expect("a stage");
     let labels = token_labels(&scene, last.grid, last.stride);
-    Ok(Example {
-        image,
-        labels,
-        scene,
-    })
+    let aux_labels = (g.stages.len() >= 2).then(|| {
+        let s = &g.stages[g.stages.len() - 2];
+        token_labels(&scene, s.grid, s.stride)
+    });
+    Ok(Example { image, labels, aux_labels, scene })
 }
 
 /// The trainable model: backbone plus a per-token linear head on the last stage.
@@ -171,6 +185,9 @@ pub struct DemoModel {
     pub backbone: Backbone,
     head_w: Tensor,
     head_b: Tensor,
+    /// A second head on the stage before the last (twice the resolution): denser labels help
+    /// the early stages learn the plants; only used while training.
+    aux: Option<(Tensor, Tensor)>,
     vars: BTreeMap<String, Var>,
 }
 
@@ -189,54 +206,70 @@ impl DemoModel {
             normal(n, (1.0 / c as f64).sqrt(), rng)
         })?;
         let head_b = src.var("head.cells.bias".into(), &[k], |n, _| vec![0.0; n])?;
-        Ok(DemoModel {
-            backbone,
-            head_w,
-            head_b,
-            vars: src.vars.into_inner(),
-        })
+        let aux = if config.n_stages() >= 2 {
+            let c2 = config.dim(config.n_stages() - 2);
+            let std = (1.0 / c2 as f64).sqrt();
+            let w = src.var("aux.cells.weight".into(), &[k, c2], |n, rng| normal(n, std, rng))?;
+            let b = src.var("aux.cells.bias".into(), &[k], |n, _| vec![0.0; n])?;
+            Some((w, b))
+        } else {
+            None
+        };
+        Ok(DemoModel { backbone, head_w, head_b, aux, vars: src.vars.into_inner() })
     }
 
     /// Logits `[tokens, classes]` of the last stage.
     pub fn logits(&self, image: &Tensor) -> Result<Tensor> {
-        let opts = ForwardOptions {
-            final_norm: true,
-            ..Default::default()
-        };
-        let out = self
-            .backbone
-            .forward(image, &opts, &RunControl::default())?;
-        let last = out
-            .final_norm
-            .as_ref()
-            .ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
-        let (h, w, c) = last.dims3()?;
-        let x = last.reshape((h * w, c))?;
-        Ok(x.matmul(&self.head_w.t()?)?.broadcast_add(&self.head_b)?)
+        Ok(self.all_logits(image)?.0)
     }
 
-    /// Mean cross-entropy over the scored tokens of a batch.
+    /// Last-stage logits and, while training, the auxiliary head's logits on the stage before
+    /// (layer-normalised without affine weights, so the head reads the same scale as the main one).
+    fn all_logits(&self, image: &Tensor) -> Result<(Tensor, Option<Tensor>)> {
+        let opts = ForwardOptions { final_norm: true, ..Default::default() };
+        let out = self.backbone.forward(image, &opts, &RunControl::default())?;
+        let last = out.final_norm.as_ref().ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
+        let (h, w, c) = last.dims3()?;
+        let x = last.reshape((h * w, c))?;
+        let main = x.matmul(&self.head_w.t()?)?.broadcast_add(&self.head_b)?;
+        let aux = match (&self.aux, out.stages.len() >= 2) {
+            (Some((aw, ab)), true) => {
+                let s = &out.stages[out.stages.len() - 2];
+                let (h2, w2, c2) = s.dims3()?;
+                let t = s.reshape((h2 * w2, c2))?;
+                let mean = t.mean_keepdim(1)?;
+                let centred = t.broadcast_sub(&mean)?;
+                let var = centred.sqr()?.mean_keepdim(1)?;
+                let normed = centred.broadcast_div(&(var + 1e-5)?.sqrt()?)?;
+                Some(normed.matmul(&aw.t()?)?.broadcast_add(ab)?)
+            }
+            _ => None,
+        };
+        Ok((main, aux))
+    }
+
+    /// Mean cross-entropy over the scored tokens of a batch (plus half the auxiliary head's).
     pub fn loss(&self, batch: &[Example]) -> Result<Tensor> {
         let mut total: Option<Tensor> = None;
         for ex in batch {
-            let logits = self.logits(&ex.image)?;
-            let keep: Vec<u32> = (0..ex.labels.len() as u32)
-                .filter(|&i| ex.labels[i as usize] != u32::MAX)
-                .collect();
-            if keep.is_empty() {
-                continue;
+            let (main, aux) = self.all_logits(&ex.image)?;
+            let mut l = scored_cross_entropy(&main, &ex.labels)?;
+            if let (Some(aux), Some(labels)) = (aux, &ex.aux_labels) {
+                if let Some(a) = scored_cross_entropy(&aux, labels)? {
+                    l = Some(match l {
+                        Some(m) => (m + (a * 0.5)?)?,
+                        None => (a * 0.5)?,
+                    });
+                }
             }
-            let idx = Tensor::from_vec(keep.clone(), keep.len(), &Device::Cpu)?;
-            let target: Vec<u32> = keep.iter().map(|&i| ex.labels[i as usize]).collect();
-            let target = Tensor::from_vec(target, keep.len(), &Device::Cpu)?;
-            let l = candle_nn::loss::cross_entropy(&logits.index_select(&idx, 0)?, &target)?;
-            total = Some(match total {
-                None => l,
-                Some(t) => (t + l)?,
-            });
+            if let Some(l) = l {
+                total = Some(match total {
+                    None => l,
+                    Some(t) => (t + l)?,
+                });
+            }
         }
-        let total =
-            total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
+        let total = total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
         Ok((total / batch.len() as f64)?)
     }
 
@@ -265,9 +298,11 @@ impl DemoModel {
 
     /// Save as a safetensors checkpoint in timm's key layout (the head as `head.cells.*`).
     pub fn save(&self, path: &Path) -> Result<()> {
+        // The auxiliary head only helped training; the checkpoint carries the main head.
         let map: std::collections::HashMap<String, Tensor> = self
             .vars
             .iter()
+            .filter(|(k, _)| !k.starts_with("aux."))
             .map(|(k, v)| (k.clone(), v.as_tensor().detach()))
             .collect();
         crate::cli::save_tensors(&map, path)
@@ -332,11 +367,11 @@ pub fn train(
                 break;
             }
         }
-        // Cosine decay to a tenth of the rate.
+        // Linear warm-up over the first 40 steps, then cosine decay to a tenth of the rate.
         let t = step as f64 / spec.steps.max(1) as f64;
-        opt.set_learning_rate(
-            spec.lr * (0.1 + 0.9 * 0.5 * (1.0 + (std::f64::consts::PI * t).cos())),
-        );
+        let warm = ((step + 1) as f64 / 40.0).min(1.0);
+        let cosine = 0.1 + 0.9 * 0.5 * (1.0 + (std::f64::consts::PI * t).cos());
+        opt.set_learning_rate(warm * spec.lr * cosine);
         let batch: Vec<Example> = (0..spec.batch)
             .map(|_| example(&training_spec(&mut rng, spec.sides), &model.backbone))
             .collect::<Result<_>>()?;
@@ -379,6 +414,7 @@ impl DemoModel {
             backbone,
             head_w: get("head.cells.weight")?,
             head_b: get("head.cells.bias")?,
+            aux: None,
             vars: BTreeMap::new(),
         })
     }
