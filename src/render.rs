@@ -666,6 +666,99 @@ pub fn default_figure_scale(image_height: u32) -> f32 {
     }
 }
 
+/// Draw every region's outline into a copy of the image, in its label's colour.
+pub fn outline_regions(image: &RgbImage, sc: &crate::labels::Sidecar) -> RgbImage {
+    let mut img = image.clone();
+    let (w, h) = img.dimensions();
+    if w == 0 || h == 0 {
+        return img;
+    }
+    let thick = (w.min(h) / 250).max(1) as i64;
+    let mut stamp = |x: f64, y: f64, c: [u8; 3]| {
+        let (cx, cy) = (x.floor() as i64, y.floor() as i64);
+        for dy in 0..thick {
+            for dx in 0..thick {
+                let (px, py) = (cx + dx - thick / 2, cy + dy - thick / 2);
+                if px >= 0 && py >= 0 && (px as u32) < w && (py as u32) < h {
+                    img.put_pixel(px as u32, py as u32, image::Rgb(c));
+                }
+            }
+        }
+    };
+    for r in &sc.regions {
+        let colour = sc.colour_of(&r.label).unwrap_or(crate::labels::PALETTE[0]);
+        let ring: Vec<[f64; 2]> = match &r.shape {
+            // The last covered pixel of [x0, x1) is x1 - 1.
+            crate::labels::Shape::Box { x0, y0, x1, y1 } => {
+                let (a, b) = (*x0, (x1 - 1.0).max(*x0));
+                let (c, d) = (*y0, (y1 - 1.0).max(*y0));
+                vec![[a, c], [b, c], [b, d], [a, d]]
+            }
+            crate::labels::Shape::Polygon { points } => points.clone(),
+        };
+        for i in 0..ring.len() {
+            let (p, q) = (ring[i], ring[(i + 1) % ring.len()]);
+            let steps = ((q[0] - p[0]).abs().max((q[1] - p[1]).abs()) * 2.0).ceil() as usize;
+            for k in 0..=steps.max(1) {
+                let t = k as f64 / steps.max(1) as f64;
+                stamp(p[0] + t * (q[0] - p[0]), p[1] + t * (q[1] - p[1]), colour);
+            }
+        }
+    }
+    img
+}
+
+/// Regions, pins, labels and notes for a saved figure: the image with every region outlined in
+/// its label's colour and every pin marked, and caption lines with the colour key, each
+/// region's note and each pin's text.
+pub fn annotate_regions(image: &RgbImage, sc: &crate::labels::Sidecar) -> (RgbImage, Vec<String>) {
+    let mut img = outline_regions(image, sc);
+    let (w, h) = img.dimensions();
+    for pin in &sc.pins {
+        let (cx, cy) = (pin.at[0].round() as i64, pin.at[1].round() as i64);
+        for d in -4i64..=4 {
+            for (x, y) in [(cx + d, cy), (cx, cy + d)] {
+                if x >= 0 && y >= 0 && (x as u32) < w && (y as u32) < h {
+                    img.put_pixel(x as u32, y as u32, image::Rgb([255, 245, 120]));
+                }
+            }
+        }
+    }
+    let mut notes = Vec::new();
+    if sc.regions.is_empty() && sc.pins.is_empty() {
+        return (img, notes);
+    }
+    let mut used: Vec<&str> = sc.regions.iter().map(|r| r.label.as_str()).collect();
+    used.sort();
+    used.dedup();
+    let key: Vec<String> = used
+        .iter()
+        .map(|l| {
+            format!(
+                "{l} {}",
+                crate::labels::colour_name(sc.colour_of(l).unwrap_or(crate::labels::PALETTE[0]))
+            )
+        })
+        .collect();
+    notes.push(format!(
+        "outlines: {} labelled regions; {}",
+        sc.regions.len(),
+        key.join(", ")
+    ));
+    for r in sc.regions.iter().filter(|r| !r.note.trim().is_empty()) {
+        notes.push(format!("region #{} ({}): {}", r.id, r.label, r.note.trim()));
+    }
+    for p in &sc.pins {
+        notes.push(format!(
+            "pin at ({:.0}, {:.0}), yellow cross: {}",
+            p.at[0],
+            p.at[1],
+            p.text.trim()
+        ));
+    }
+    (img, notes)
+}
+
 /// Everything a figure shows.
 pub struct FigureSpec<'a> {
     pub image: &'a RgbImage,

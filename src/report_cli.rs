@@ -11,10 +11,9 @@ use crate::analysis::regions::{region_stats, RegionStats};
 use crate::analysis::{parse_map_kind, Colormap, Map, MapKind, ScaleSpec};
 use crate::cli::{RunArgs, Session};
 use crate::error::{Error, Result};
-use crate::labels::{self, Shape, Sidecar};
+use crate::labels::{self, Sidecar};
 use crate::render::{self, FigureSpec, FigureStage, Overlays, PanelStyle};
 use clap::Args;
-use image::RgbImage;
 use indicatif::{ProgressBar, ProgressStyle};
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
@@ -446,7 +445,8 @@ impl Context<'_> {
         }
         // With figures, the shared preparation gives the raw maps and their display form at once.
         let (maps, display) = if figure_path.is_some() {
-            let (raw, shown) = render::figure_stages(&out, self.kind.as_ref(), &figure_scale())?;
+            let (raw, shown) =
+                render::figure_stages(&out, self.kind.as_ref(), &ScaleSpec::default())?;
             (raw, Some(shown))
         } else {
             let raw = (0..out.stages.len())
@@ -473,57 +473,6 @@ impl Context<'_> {
     }
 }
 
-/// Draw every region's outline into a copy of the image, in its label's colour.
-pub fn outline_regions(image: &RgbImage, sc: &Sidecar) -> RgbImage {
-    let mut img = image.clone();
-    let (w, h) = img.dimensions();
-    if w == 0 || h == 0 {
-        return img;
-    }
-    let thick = (w.min(h) / 250).max(1) as i64;
-    let mut stamp = |x: f64, y: f64, c: [u8; 3]| {
-        let (cx, cy) = (x.floor() as i64, y.floor() as i64);
-        for dy in 0..thick {
-            for dx in 0..thick {
-                let (px, py) = (cx + dx - thick / 2, cy + dy - thick / 2);
-                if px >= 0 && py >= 0 && (px as u32) < w && (py as u32) < h {
-                    img.put_pixel(px as u32, py as u32, image::Rgb(c));
-                }
-            }
-        }
-    };
-    for r in &sc.regions {
-        let colour = sc.colour_of(&r.label).unwrap_or(labels::PALETTE[0]);
-        let ring: Vec<[f64; 2]> = match &r.shape {
-            // The last covered pixel of [x0, x1) is x1 - 1.
-            Shape::Box { x0, y0, x1, y1 } => {
-                let (a, b) = (*x0, (x1 - 1.0).max(*x0));
-                let (c, d) = (*y0, (y1 - 1.0).max(*y0));
-                vec![[a, c], [b, c], [b, d], [a, d]]
-            }
-            Shape::Polygon { points } => points.clone(),
-        };
-        for i in 0..ring.len() {
-            let (p, q) = (ring[i], ring[(i + 1) % ring.len()]);
-            let steps = ((q[0] - p[0]).abs().max((q[1] - p[1]).abs()) * 2.0).ceil() as usize;
-            for k in 0..=steps.max(1) {
-                let t = k as f64 / steps.max(1) as f64;
-                stamp(p[0] + t * (q[0] - p[0]), p[1] + t * (q[1] - p[1]), colour);
-            }
-        }
-    }
-    img
-}
-
-/// The colour scaling of report figures: the defaults of `mullion figure`, so both read the same.
-fn figure_scale() -> ScaleSpec {
-    ScaleSpec {
-        shared_across_stages: false,
-        log: false,
-        clip_percentiles: (1.0, 99.0),
-    }
-}
-
 fn write_figure(
     ctx: &Context,
     image_path: &Path,
@@ -533,7 +482,7 @@ fn write_figure(
     path: &Path,
 ) -> Result<()> {
     let image = crate::input::load_image(image_path)?;
-    let annotated = outline_regions(&image, sc);
+    let (annotated, region_notes) = render::annotate_regions(&image, sc);
     let scale = render::default_figure_scale(annotated.height());
     let colormap = Colormap::Viridis;
     let style = PanelStyle {
@@ -545,27 +494,11 @@ fn write_figure(
         },
         scale,
     };
-    let mut used: Vec<&str> = sc.regions.iter().map(|r| r.label.as_str()).collect();
-    used.sort();
-    used.dedup();
-    let key: Vec<String> = used
-        .iter()
-        .map(|l| {
-            let c = sc.colour_of(l).unwrap_or(labels::PALETTE[0]);
-            format!("{l} {}", labels::colour_name(c))
-        })
-        .collect();
-    let notes = vec![
-        format!(
-            "colour scale: per stage, linear, percentiles 1-99 ({}), values beyond clamp",
-            colormap.name()
-        ),
-        format!(
-            "outlines: {} labelled regions; {}",
-            sc.regions.len(),
-            key.join(", ")
-        ),
-    ];
+    let mut notes = vec![format!(
+        "colour scale: per stage, linear, percentiles 1-99 ({}), values beyond clamp",
+        colormap.name()
+    )];
+    notes.extend(region_notes);
     let fig = render::compose_figure(&FigureSpec {
         image: &annotated,
         geometry: &out.geometry,

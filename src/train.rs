@@ -140,14 +140,19 @@ pub struct Example {
 
 /// Cross-entropy over the tokens whose label is not `u32::MAX`; `None` when there are none.
 fn scored_cross_entropy(logits: &Tensor, labels: &[u32]) -> Result<Option<Tensor>> {
-    let keep: Vec<u32> = (0..labels.len() as u32).filter(|&i| labels[i as usize] != u32::MAX).collect();
+    let keep: Vec<u32> = (0..labels.len() as u32)
+        .filter(|&i| labels[i as usize] != u32::MAX)
+        .collect();
     if keep.is_empty() {
         return Ok(None);
     }
     let target: Vec<u32> = keep.iter().map(|&i| labels[i as usize]).collect();
     let idx = Tensor::from_vec(keep, target.len(), &Device::Cpu)?;
     let target = Tensor::from_vec(target.clone(), target.len(), &Device::Cpu)?;
-    Ok(Some(candle_nn::loss::cross_entropy(&logits.index_select(&idx, 0)?, &target)?))
+    Ok(Some(candle_nn::loss::cross_entropy(
+        &logits.index_select(&idx, 0)?,
+        &target,
+    )?))
 }
 
 /// Labels of the last-stage tokens of a scene: the class under each token's centre pixel.
@@ -177,7 +182,12 @@ pub fn example(spec: &SceneSpec, model: &Backbone) -> Result<Example> {
         let s = &g.stages[g.stages.len() - 2];
         token_labels(&scene, s.grid, s.stride)
     });
-    Ok(Example { image, labels, aux_labels, scene })
+    Ok(Example {
+        image,
+        labels,
+        aux_labels,
+        scene,
+    })
 }
 
 /// The trainable model: backbone plus a per-token linear head on the last stage.
@@ -209,13 +219,21 @@ impl DemoModel {
         let aux = if config.n_stages() >= 2 {
             let c2 = config.dim(config.n_stages() - 2);
             let std = (1.0 / c2 as f64).sqrt();
-            let w = src.var("aux.cells.weight".into(), &[k, c2], |n, rng| normal(n, std, rng))?;
+            let w = src.var("aux.cells.weight".into(), &[k, c2], |n, rng| {
+                normal(n, std, rng)
+            })?;
             let b = src.var("aux.cells.bias".into(), &[k], |n, _| vec![0.0; n])?;
             Some((w, b))
         } else {
             None
         };
-        Ok(DemoModel { backbone, head_w, head_b, aux, vars: src.vars.into_inner() })
+        Ok(DemoModel {
+            backbone,
+            head_w,
+            head_b,
+            aux,
+            vars: src.vars.into_inner(),
+        })
     }
 
     /// Logits `[tokens, classes]` of the last stage.
@@ -226,9 +244,17 @@ impl DemoModel {
     /// Last-stage logits and, while training, the auxiliary head's logits on the stage before
     /// (layer-normalised without affine weights, so the head reads the same scale as the main one).
     fn all_logits(&self, image: &Tensor) -> Result<(Tensor, Option<Tensor>)> {
-        let opts = ForwardOptions { final_norm: true, ..Default::default() };
-        let out = self.backbone.forward(image, &opts, &RunControl::default())?;
-        let last = out.final_norm.as_ref().ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
+        let opts = ForwardOptions {
+            final_norm: true,
+            ..Default::default()
+        };
+        let out = self
+            .backbone
+            .forward(image, &opts, &RunControl::default())?;
+        let last = out
+            .final_norm
+            .as_ref()
+            .ok_or_else(|| Error::Internal("the demo model has no final norm".into()))?;
         let (h, w, c) = last.dims3()?;
         let x = last.reshape((h * w, c))?;
         let main = x.matmul(&self.head_w.t()?)?.broadcast_add(&self.head_b)?;
@@ -269,7 +295,8 @@ impl DemoModel {
                 });
             }
         }
-        let total = total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
+        let total =
+            total.ok_or_else(|| Error::BadArgument("a batch without scored tokens".into()))?;
         Ok((total / batch.len() as f64)?)
     }
 

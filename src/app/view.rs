@@ -946,6 +946,28 @@ pub fn export_paths(bench: &Workbench) -> Option<(PathBuf, PathBuf, PathBuf)> {
     ))
 }
 
+/// A copy of a sidecar with every coordinate scaled (for a resized network input).
+fn scale_sidecar(sc: &crate::labels::Sidecar, sx: f64, sy: f64) -> crate::labels::Sidecar {
+    let mut out = sc.clone();
+    let p = |q: &mut [f64; 2]| {
+        q[0] *= sx;
+        q[1] *= sy;
+    };
+    for r in &mut out.regions {
+        match &mut r.shape {
+            crate::labels::Shape::Box { x0, y0, x1, y1 } => {
+                *x0 *= sx;
+                *x1 *= sx;
+                *y0 *= sy;
+                *y1 *= sy;
+            }
+            crate::labels::Shape::Polygon { points } => points.iter_mut().for_each(p),
+        }
+    }
+    out.pins.iter_mut().for_each(|pin| p(&mut pin.at));
+    out
+}
+
 /// Save the current view: the figure through the shared renderer at full resolution, and the
 /// per-stage statistics as JSON and CSV (scalar maps).
 pub fn save_current(bench: &mut Workbench) -> Result<PathBuf> {
@@ -969,8 +991,33 @@ pub fn save_current(bench: &mut Workbench) -> Result<PathBuf> {
         .as_ref()
         .map_or_else(String::new, |w| w.name.clone());
     let kind = parse_map_kind(&map_id(bench))?;
+    // Regions are marked in image pixels; with a resizing input policy they are scaled along.
+    let (iw, ih) = bench
+        .image
+        .as_ref()
+        .map_or((1, 1), |i| i.pixels.dimensions());
+    let (mut notes, annotated) = (
+        vec![format!(
+            "input policy: {}",
+            bench.settings.policy.describe()
+        )],
+        shown.input.clone(),
+    );
+    let annotated = match &bench.regions.sidecar {
+        Some(sc) => {
+            let scaled = scale_sidecar(
+                sc,
+                shown.input.width() as f64 / iw as f64,
+                shown.input.height() as f64 / ih as f64,
+            );
+            let (img, region_notes) = render::annotate_regions(&annotated, &scaled);
+            notes.extend(region_notes);
+            img
+        }
+        None => annotated,
+    };
     let fig = render::compose_figure(&FigureSpec {
-        image: &shown.input,
+        image: &annotated,
         geometry: &out.geometry,
         stages: &stages,
         style: panel_style(bench, scale),
