@@ -44,7 +44,7 @@ pub enum Command {
     Open(OpenArgs),
     /// Regenerate the synthetic demo images (seedling trays) and their cell labels.
     SampleData(SampleDataArgs),
-    /// Train the bundled demo checkpoint on generated seedling-tray images (about 25 minutes
+    /// Train the bundled demo checkpoint on generated seedling-tray images (about 15 minutes
     /// on 2 cores); writes demo.safetensors, demo-early.safetensors and MODEL_CARD.md.
     TrainDemo(TrainDemoArgs),
 }
@@ -55,7 +55,7 @@ pub struct TrainDemoArgs {
     #[arg(long, default_value = "sample-data", value_name = "DIR")]
     pub out: PathBuf,
     /// Optimisation steps.
-    #[arg(long, default_value_t = 900)]
+    #[arg(long, default_value_t = 600)]
     pub steps: usize,
     /// Images per step.
     #[arg(long, default_value_t = 4)]
