@@ -158,11 +158,25 @@ fn scored_cross_entropy(logits: &Tensor, labels: &[u32]) -> Result<Option<Tensor
 /// Binary cross-entropy of plant presence (healthy, wilted, weed) from presence logits, over
 /// the scored tokens.
 fn presence_loss(logits: &Tensor, labels: &[u32]) -> Result<Tensor> {
-    let keep: Vec<u32> = (0..labels.len() as u32).filter(|&i| labels[i as usize] != u32::MAX).collect();
-    let target: Vec<f32> = keep.iter().map(|&i| if (2..=4).contains(&labels[i as usize]) { 1.0 } else { 0.0 }).collect();
+    let keep: Vec<u32> = (0..labels.len() as u32)
+        .filter(|&i| labels[i as usize] != u32::MAX)
+        .collect();
+    let target: Vec<f32> = keep
+        .iter()
+        .map(|&i| {
+            if (2..=4).contains(&labels[i as usize]) {
+                1.0
+            } else {
+                0.0
+            }
+        })
+        .collect();
     let idx = Tensor::from_vec(keep, target.len(), &Device::Cpu)?;
     let target = Tensor::from_vec(target.clone(), target.len(), &Device::Cpu)?;
-    Ok(candle_nn::loss::binary_cross_entropy_with_logit(&logits.index_select(&idx, 0)?, &target)?)
+    Ok(candle_nn::loss::binary_cross_entropy_with_logit(
+        &logits.index_select(&idx, 0)?,
+        &target,
+    )?)
 }
 
 /// Labels of the last-stage tokens of a scene: the class under each token's centre pixel.
@@ -295,7 +309,9 @@ impl DemoModel {
             Some((scale, shift)) => {
                 let raw = out.stages.last().expect("a stage");
                 let (h, w, c) = raw.dims3()?;
-                let log_norm = (raw.reshape((h * w, c))?.sqr()?.sum(1)? + 1e-6)?.sqrt()?.log()?;
+                let log_norm = (raw.reshape((h * w, c))?.sqr()?.sum(1)? + 1e-6)?
+                    .sqrt()?
+                    .log()?;
                 Some(log_norm.broadcast_sub(shift)?.broadcast_mul(scale)?)
             }
             None => None,
@@ -483,7 +499,11 @@ impl DemoModel {
 /// Last-stage token L2 norms of an example, split by whether the token's centre is on a plant
 /// (healthy, wilted or weed) or not (soil, empty cell, tray); padding tokens are left out.
 pub fn plant_and_other_norms(backbone: &Backbone, ex: &Example) -> Result<(Vec<f64>, Vec<f64>)> {
-    let out = backbone.forward(&ex.image, &ForwardOptions::default(), &RunControl::default())?;
+    let out = backbone.forward(
+        &ex.image,
+        &ForwardOptions::default(),
+        &RunControl::default(),
+    )?;
     let last = out.stages.last().expect("a stage");
     let norms: Vec<f32> = last.sqr()?.sum(2)?.sqrt()?.flatten_all()?.to_vec1()?;
     let (mut plant, mut other) = (Vec::new(), Vec::new());

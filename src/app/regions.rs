@@ -125,6 +125,11 @@ impl Workbench {
                 Sidecar::new(name, size.0, size.1)
             }
         };
+        if let Some(first) = sidecar.labels.first() {
+            if sidecar.colour_of(&self.regions.label).is_none() {
+                self.regions.label = first.name.clone();
+            }
+        }
         self.regions.sidecar = Some(sidecar);
         self.regions.path = Some(path);
     }
@@ -458,7 +463,9 @@ pub fn paint(
                 painter.rect_filled(Rect::from_center_size(*p, Vec2::splat(7.0)), 1.0, c);
             }
         }
-        if let Some(first) = pts.first() {
+        // Names only in the lens, and only where they stay readable.
+        let named = highlight_stage.is_some() && (selected || sc.regions.len() <= 12);
+        if let (true, Some(first)) = (named, pts.first()) {
             painter.text(
                 *first + Vec2::new(3.0, -2.0),
                 egui::Align2::LEFT_BOTTOM,

@@ -302,6 +302,28 @@ pub fn top_bar(bench: &mut Workbench, ui: &mut egui::Ui) {
             if ui.button("Open checkpoint…").clicked() {
                 bench.pick_in_background(true, false);
             }
+            let mut reopen = None;
+            ui.menu_button("Recent", |ui| {
+                let lists = [
+                    ("images", &bench.settings.recent_images),
+                    ("checkpoints", &bench.settings.recent_weights),
+                ];
+                for (what, list) in lists {
+                    ui.label(what);
+                    if list.is_empty() {
+                        ui.small("none yet");
+                    }
+                    for p in list.iter() {
+                        if ui.button(p.display().to_string()).clicked() {
+                            reopen = Some(p.clone());
+                            ui.close();
+                        }
+                    }
+                }
+            });
+            if let Some(p) = reopen {
+                bench.open_paths(&[p]);
+            }
             ui.separator();
             let label = ui.label("Path:");
             let field = ui
