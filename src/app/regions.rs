@@ -119,7 +119,14 @@ impl Workbench {
                 }
                 sc
             }
-            Ok(None) => Sidecar::new(name, size.0, size.1),
+            // A new image starts with the label list in use, so one list serves the project.
+            Ok(None) => {
+                let mut sc = Sidecar::new(name, size.0, size.1);
+                if let Some(prev) = &self.regions.sidecar {
+                    sc.labels = prev.labels.clone();
+                }
+                sc
+            }
             Err(e) => {
                 self.error(e);
                 Sidecar::new(name, size.0, size.1)
@@ -559,6 +566,15 @@ fn panel_contents(bench: &mut Workbench, ui: &mut egui::Ui) {
                 .labelled_by(l.id);
         });
     }
+    ui.horizontal(|ui| {
+        let l = ui.label("Sidecar folder");
+        ui.add(
+            egui::TextEdit::singleline(&mut bench.regions.project_dir)
+                .hint_text("next to each image")
+                .desired_width(150.0),
+        )
+        .labelled_by(l.id);
+    });
     ui.horizontal(|ui| {
         if ui
             .add_enabled(bench.regions.edits.can_undo(), egui::Button::new("Undo"))
