@@ -39,6 +39,12 @@ fn progress_reaches_every_block_and_wakes_the_caller() {
     assert_eq!(seen, (1..=total).collect::<Vec<_>>());
     assert_eq!(out.stages.len(), 3);
     assert_eq!(out.stages[0].dims(), &[16, 21, 16]);
+    // One wake-up per progress event and one after the result; the last may come just after
+    // `wait` has returned, since the worker sends the result before it wakes the caller.
+    let start = std::time::Instant::now();
+    while wakes.load(Ordering::Relaxed) < total + 1 && start.elapsed().as_secs() < 5 {
+        std::thread::sleep(std::time::Duration::from_millis(5));
+    }
     assert_eq!(wakes.load(Ordering::Relaxed), total + 1);
 }
 
