@@ -193,19 +193,15 @@ impl Workbench {
         self.regions.selected = new_id;
     }
 
-    /// Recompute the statistics when the result, the map or the regions changed.
+    /// Recompute the statistics when the result or the map changed; every region edit clears
+    /// `stats_for` (in `save_regions` and `open_regions`), so nothing is compared per frame.
     pub(super) fn refresh_region_stats(&mut self) {
         let (Some(shown), Some(sc)) = (&self.shown, &self.regions.sidecar) else {
             self.regions.stats.clear();
             return;
         };
         let map = super::view::map_id(self);
-        let sig = format!(
-            "{}|{}|{}",
-            shown.key,
-            map,
-            labels::to_json(sc).unwrap_or_default()
-        );
+        let sig = format!("{}|{}", shown.key, map);
         if self.regions.stats_for.as_deref() == Some(sig.as_str()) {
             return;
         }
