@@ -1,21 +1,33 @@
 //! Mullion: look inside a shifted-window hierarchical vision transformer backbone, on the CPU,
 //! from your own checkpoint and your own images.
 //!
-//! The library holds everything; the binary only parses arguments and dispatches.
+//! The library holds everything; the binary only parses arguments and dispatches. Modules are
+//! layered and imports run one way, from the bottom up (`tests/suite/architecture.rs` checks it):
+//!
+//! ```text
+//! error, io, numeric     the foundation: errors, atomic files, image listing, AUROC
+//! engine                 geometry, config, checkpoint, layers, model, input, session, worker
+//! annotation             shapes and clipping, the sidecar file, undo history, palette
+//! analysis               map kinds, PCA, scaling, colour maps, statistics, map preparation,
+//!                        region statistics
+//! render                 panels, legends, text, composed figures
+//! headless               one image's figure, the report over a folder
+//! demo                   the seedling-tray generator, its labels, demo training
+//!                        (uses only the foundation, engine and annotation)
+//! app                    the window
+//! commands               one file per subcommand; the only module that knows clap
+//! ```
 
 pub mod analysis;
+pub mod annotation;
 pub mod app;
-pub mod backbone;
-pub mod cli;
+pub mod commands;
+pub mod demo;
+pub mod engine;
 pub mod error;
-pub mod figure_cli;
-pub mod geometry;
-pub mod input;
-pub mod labels;
+pub mod headless;
+pub mod io;
+pub mod numeric;
 pub mod render;
-pub mod report_cli;
-pub mod scene;
-pub mod train;
-pub mod worker;
 
 pub use error::{Error, Result};

@@ -5,7 +5,7 @@
 //! clamped. Percentiles interpolate linearly between order statistics, as numpy.percentile does
 //! with its default method "linear".
 
-use super::Map;
+use super::map::Map;
 use crate::error::{Error, Result};
 use serde::{Deserialize, Serialize};
 

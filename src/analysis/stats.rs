@@ -1,9 +1,9 @@
 //! Per-stage statistics of a scalar map, for export as JSON or CSV.
 
+use super::map::Map;
 use super::scale::percentile_sorted;
-use super::Map;
+use crate::engine::geometry::Geometry;
 use crate::error::{Error, Result};
-use crate::geometry::Geometry;
 use serde::Serialize;
 use std::path::Path;
 
@@ -89,16 +89,10 @@ pub fn stage_stats(map_id: &str, maps: &[Map], geometry: &Geometry) -> Result<Ve
         .collect()
 }
 
-fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    crate::render::write_atomic(path, |tmp| {
-        std::fs::write(tmp, bytes).map_err(|e| Error::io(path, e))
-    })
-}
-
 /// Write the statistics as a JSON array, one object per stage.
 pub fn write_stats_json(stats: &[StageStats], path: &Path) -> Result<()> {
     let text = serde_json::to_string_pretty(stats).map_err(|e| Error::Internal(e.to_string()))?;
-    write_atomic(path, format!("{text}\n").as_bytes())
+    crate::io::write_text_atomic(path, &format!("{text}\n"))
 }
 
 /// The statistics as CSV text: a header row, then one row per stage.
@@ -113,13 +107,13 @@ pub fn stats_csv(stats: &[StageStats]) -> Result<String> {
 
 /// Write the statistics as CSV.
 pub fn write_stats_csv(stats: &[StageStats], path: &Path) -> Result<()> {
-    write_atomic(path, stats_csv(stats)?.as_bytes())
+    crate::io::write_text_atomic(path, &stats_csv(stats)?)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::geometry::{ModelShape, PadOrder, Semantics, SmallStage};
+    use crate::engine::geometry::{ModelShape, PadOrder, Semantics, SmallStage};
 
     #[test]
     fn stats_and_exports() {

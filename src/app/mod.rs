@@ -9,29 +9,20 @@ pub mod regions;
 pub mod settings;
 mod view;
 
-use crate::backbone::{
+use crate::engine::input;
+use crate::engine::worker::{Event, Job};
+use crate::engine::{
     Backbone, Checkpoint, Config, ConfigOverride, ForwardOptions, LoadReport, Progress,
     StageOutputs,
 };
 use crate::error::{Error, Result};
-use crate::input;
-use crate::worker::{Event, Job};
 use settings::Settings;
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::sync::mpsc::{channel, Receiver, Sender};
 use std::sync::Arc;
 
-/// Image file endings the window opens.
-pub const IMAGE_EXTENSIONS: [&str; 7] = ["png", "jpg", "jpeg", "webp", "tif", "tiff", "bmp"];
-/// Checkpoint file endings.
-pub const WEIGHT_EXTENSIONS: [&str; 4] = ["safetensors", "pth", "pt", "bin"];
-
-fn has_extension(path: &Path, list: &[&str]) -> bool {
-    path.extension()
-        .and_then(|e| e.to_str())
-        .is_some_and(|e| list.iter().any(|x| x.eq_ignore_ascii_case(e)))
-}
+use crate::io::{has_extension, IMAGE_EXTENSIONS, WEIGHT_EXTENSIONS};
 
 /// A loaded checkpoint.
 pub struct LoadedWeights {

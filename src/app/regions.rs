@@ -3,8 +3,8 @@
 //! a per-image label list, autosave to the sidecar after every edit, and the statistics table.
 
 use super::Workbench;
-use crate::analysis::regions::{region_stats, token_weights, RegionStats, INSIDE_WEIGHT};
-use crate::labels::{self, Edits, Shape, Sidecar};
+use crate::analysis::{region_stats, token_weights, RegionStats, INSIDE_WEIGHT};
+use crate::annotation::{self, Edits, Shape, Sidecar};
 use egui::{Color32, Pos2, Rect, Response, Stroke, Vec2};
 use std::path::{Path, PathBuf};
 
@@ -98,7 +98,7 @@ impl Workbench {
     pub(super) fn open_regions(&mut self, image: &Path, size: (u32, u32)) {
         let dir = self.regions.project_dir.trim();
         let dir = (!dir.is_empty()).then(|| PathBuf::from(dir));
-        let path = labels::sidecar_path(image, dir.as_deref());
+        let path = annotation::sidecar_path(image, dir.as_deref());
         let name = image
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
@@ -108,7 +108,7 @@ impl Workbench {
         r.selected = None;
         r.draft.clear();
         r.stats_for = None;
-        let loaded = labels::load_with_warnings(&path);
+        let loaded = annotation::load_with_warnings(&path);
         let sidecar = match loaded {
             Ok(Some((sc, warnings))) => {
                 for w in warnings {
@@ -173,7 +173,7 @@ impl Workbench {
         let (Some(sc), Some(path)) = (&self.regions.sidecar, &self.regions.path) else {
             return;
         };
-        if let Err(e) = labels::save(path, sc) {
+        if let Err(e) = annotation::save(path, sc) {
             self.error(format!(
                 "regions not saved (they are kept in the window): {e}"
             ));
@@ -210,7 +210,7 @@ impl Workbench {
         self.regions.stats = if raw.is_empty() || raw.iter().any(|m| m.scalars().is_none()) {
             Vec::new()
         } else {
-            match region_stats(&shown.outputs, &raw, &map, &sc.regions) {
+            match region_stats(&shown.outputs, &raw, &map, &sc.regions, &sc.image) {
                 Ok(s) => s,
                 Err(e) => {
                     self.error(e);
@@ -511,7 +511,7 @@ fn fmt(v: Option<f64>) -> String {
 fn sort_key(s: &RegionStats, c: Column) -> f64 {
     let f = |v: Option<f64>| v.unwrap_or(f64::NEG_INFINITY);
     match c {
-        Column::Region => s.region_id as f64,
+        Column::Region => s.region as f64,
         Column::Stage => s.stage as f64,
         Column::Inside => f(s.inside_mean),
         Column::Outside => f(s.outside_mean),
@@ -744,12 +744,12 @@ fn panel_contents(bench: &mut Workbench, ui: &mut egui::Ui) {
             }
             ui.end_row();
             for s in &rows {
-                let sel = bench.regions.selected == Some(s.region_id);
+                let sel = bench.regions.selected == Some(s.region);
                 if ui
-                    .selectable_label(sel, format!("{} #{}", s.label, s.region_id))
+                    .selectable_label(sel, format!("{} #{}", s.label, s.region))
                     .clicked()
                 {
-                    clicked = Some((s.region_id, s.stage));
+                    clicked = Some((s.region, s.stage));
                 }
                 ui.label(s.stage.to_string());
                 ui.label(fmt(s.inside_mean));

@@ -1,44 +1,8 @@
 //! What the window remembers between runs: plain data only (eframe storage, `serde(default)`).
 
-use crate::input::Normalisation;
+use crate::engine::input::{InputPolicy, Normalisation};
 use serde::{Deserialize, Serialize};
 use std::path::PathBuf;
-
-/// How an image becomes the network input.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
-pub enum InputPolicy {
-    /// The image at its own size (the default: what the user really feeds).
-    Native,
-    /// Resize so the long side is N pixels, keeping the aspect ratio.
-    FitLongSide(u32),
-    /// Resize to N x N.
-    Square(u32),
-}
-
-impl InputPolicy {
-    /// Target (width, height) for an image of (w, h).
-    pub fn target(self, w: u32, h: u32) -> (u32, u32) {
-        match self {
-            InputPolicy::Native => (w, h),
-            InputPolicy::FitLongSide(n) => {
-                let s = n as f64 / w.max(h) as f64;
-                (
-                    ((w as f64 * s).round() as u32).max(1),
-                    ((h as f64 * s).round() as u32).max(1),
-                )
-            }
-            InputPolicy::Square(n) => (n, n),
-        }
-    }
-
-    pub fn describe(self) -> String {
-        match self {
-            InputPolicy::Native => "native size".into(),
-            InputPolicy::FitLongSide(n) => format!("long side {n}"),
-            InputPolicy::Square(n) => format!("{n}x{n}"),
-        }
-    }
-}
 
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 #[serde(default)]
@@ -99,13 +63,6 @@ impl Settings {
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn policies_keep_aspect() {
-        assert_eq!(InputPolicy::Native.target(333, 250), (333, 250));
-        assert_eq!(InputPolicy::FitLongSide(224).target(333, 250), (224, 168));
-        assert_eq!(InputPolicy::Square(224).target(333, 250), (224, 224));
-    }
 
     #[test]
     fn settings_round_trip_and_tolerate_missing_fields() {

@@ -3,9 +3,9 @@
 //! report. Pictures come from the shared renderer, so the screen shows what a saved figure shows.
 
 use super::{Level, Workbench};
-use crate::analysis::{self, parse_map_kind, Colormap, Map, ScaleSpec};
+use crate::analysis::{self, parse_map_kind, Colormap, Map, PreparedStage, ScaleSpec};
 use crate::error::{Error, Result};
-use crate::render::{self, FigureSpec, FigureStage, Overlays, PanelStyle};
+use crate::render::{self, FigureSpec, Overlays, PanelStyle};
 use egui::{Color32, Pos2, Rect, Sense, Stroke, TextureHandle, TextureOptions, Vec2};
 use std::path::PathBuf;
 
@@ -20,7 +20,7 @@ pub struct ViewState {
     lens: Option<TextureHandle>,
     /// Raw (unscaled) map values per stage, for the hover read-out.
     raw: Vec<Map>,
-    pub prepared: Vec<FigureStage>,
+    pub prepared: Vec<PreparedStage>,
     pub zoom: f32,
     pub pan: Vec2,
     /// Hovered point in input-image pixels.
@@ -78,11 +78,11 @@ pub fn panel_style(bench: &Workbench, scale: f32) -> PanelStyle {
 
 /// Every stage's map for the current settings (see [`render::figure_stages`]).
 pub fn prepare_stages(
-    out: &crate::backbone::StageOutputs,
+    out: &crate::engine::StageOutputs,
     map: &str,
     spec: &ScaleSpec,
-) -> Result<(Vec<Map>, Vec<FigureStage>)> {
-    render::figure_stages(out, parse_map_kind(map)?.as_ref(), spec)
+) -> Result<(Vec<Map>, Vec<PreparedStage>)> {
+    analysis::prepare_stages(out, parse_map_kind(map)?.as_ref(), spec)
 }
 
 fn to_color_image(img: &image::RgbaImage) -> egui::ColorImage {
@@ -458,7 +458,7 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
     let n_stages = bench.n_stages();
     let s = &mut bench.settings;
     ui.heading("Input");
-    use super::settings::InputPolicy;
+    use crate::engine::input::InputPolicy;
     let mut kind = match s.policy {
         InputPolicy::Native => 0,
         InputPolicy::FitLongSide(_) => 1,
@@ -490,10 +490,10 @@ fn controls(bench: &mut Workbench, ui: &mut egui::Ui) {
     ui.label("Normalisation mean / std");
     ui.horizontal(|ui| {
         if ui.small_button("ImageNet").clicked() {
-            s.norm = crate::input::Normalisation::IMAGENET;
+            s.norm = crate::engine::input::Normalisation::IMAGENET;
         }
         if ui.small_button("0.5 / 0.5").clicked() {
-            s.norm = crate::input::Normalisation::HALF;
+            s.norm = crate::engine::input::Normalisation::HALF;
         }
     });
     for c in 0..3 {
@@ -826,7 +826,7 @@ pub fn central(bench: &mut Workbench, ui: &mut egui::Ui) {
     });
 }
 
-fn legend_text(ui: &mut egui::Ui, st: Option<&FigureStage>) {
+fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>) {
     let Some(st) = st else { return };
     match (&st.range, &st.explained) {
         (Some(r), _) => {
@@ -922,7 +922,7 @@ pub fn help_overlay(bench: &mut Workbench, ui: &mut egui::Ui) {
             });
             ui.separator();
             ui.small("Drop image files, folders or checkpoints anywhere on the window.");
-            ui.small(render::CAUTION);
+            ui.small(analysis::CAUTION);
         });
     bench.show_help &= open;
 }
@@ -969,7 +969,7 @@ pub fn export_paths(bench: &Workbench) -> Option<(PathBuf, PathBuf, PathBuf)> {
 }
 
 /// A copy of a sidecar with every coordinate scaled (for a resized network input).
-fn scale_sidecar(sc: &crate::labels::Sidecar, sx: f64, sy: f64) -> crate::labels::Sidecar {
+fn scale_sidecar(sc: &crate::annotation::Sidecar, sx: f64, sy: f64) -> crate::annotation::Sidecar {
     let mut out = sc.clone();
     let p = |q: &mut [f64; 2]| {
         q[0] *= sx;
@@ -977,13 +977,13 @@ fn scale_sidecar(sc: &crate::labels::Sidecar, sx: f64, sy: f64) -> crate::labels
     };
     for r in &mut out.regions {
         match &mut r.shape {
-            crate::labels::Shape::Box { x0, y0, x1, y1 } => {
+            crate::annotation::Shape::Box { x0, y0, x1, y1 } => {
                 *x0 *= sx;
                 *x1 *= sx;
                 *y0 *= sy;
                 *y1 *= sy;
             }
-            crate::labels::Shape::Polygon { points } => points.iter_mut().for_each(p),
+            crate::annotation::Shape::Polygon { points } => points.iter_mut().for_each(p),
         }
     }
     out.pins.iter_mut().for_each(|pin| p(&mut pin.at));
@@ -1051,7 +1051,7 @@ pub fn save_current(bench: &mut Workbench) -> Result<PathBuf> {
         )],
         text_px: 14.0,
     })?;
-    render::save_png_atomic(&fig, &png)?;
+    crate::io::save_png_atomic(&fig, &png)?;
     if raw.iter().all(|m| m.scalars().is_some()) {
         let stats = analysis::stage_stats(&kind.id(), &raw, &out.geometry)?;
         analysis::write_stats_json(&stats, &json)?;

@@ -1,0 +1,60 @@
+//! Map preparation: every stage's map of one forward pass, raw (for read-outs and statistics)
+//! and scaled for display with its legend range (or, for PCA, the variance shares). The window,
+//! `mullion figure` and the report all prepare their pictures here.
+
+use super::map::{stage_tokens, Map, MapKind};
+use super::pca::fit_pca;
+use super::scale::{normalise_maps, ScaleRange, ScaleSpec};
+use crate::engine::StageOutputs;
+use crate::error::Result;
+
+/// One stage ready to draw: its map (already in [0, 1]) and, for scalar maps, the range the
+/// legend labels.
+#[derive(Clone, Debug)]
+pub struct PreparedStage {
+    pub stage: usize,
+    pub map: Map,
+    pub range: Option<ScaleRange>,
+    /// Share of variance of the principal components, for RGB maps from PCA.
+    pub explained: Option<Vec<f64>>,
+}
+
+/// Every stage's map of one forward pass, raw (for read-outs and statistics) and scaled for
+/// display with its legend range (or, for PCA, the variance shares). The window and the figure
+/// command both prepare their pictures here.
+pub fn prepare_stages(
+    out: &StageOutputs,
+    kind: &dyn MapKind,
+    spec: &ScaleSpec,
+) -> Result<(Vec<Map>, Vec<PreparedStage>)> {
+    let n = out.stages.len();
+    if kind.id() == "pca" {
+        let mut raw = Vec::with_capacity(n);
+        let mut stages = Vec::with_capacity(n);
+        for s in 0..n {
+            let fit = fit_pca(&stage_tokens(out, s)?)?;
+            raw.push(fit.rgb.clone());
+            stages.push(PreparedStage {
+                stage: s,
+                map: fit.rgb,
+                range: None,
+                explained: Some(fit.explained),
+            });
+        }
+        return Ok((raw, stages));
+    }
+    let raw: Vec<Map> = (0..n)
+        .map(|s| kind.compute(out, s))
+        .collect::<Result<_>>()?;
+    let stages = normalise_maps(&raw, spec)?
+        .into_iter()
+        .enumerate()
+        .map(|(s, (map, range))| PreparedStage {
+            stage: s,
+            map,
+            range: Some(range),
+            explained: None,
+        })
+        .collect();
+    Ok((raw, stages))
+}

@@ -1,0 +1,91 @@
+//! `mullion bench`: time forward passes of a published model size with random weights. The last
+//! line is the contract `median_ms=<float> peak_rss_mb=<float>`.
+
+use super::options::{parse_size, PresetArg};
+use crate::engine::input::DEFAULT_MEMORY_LIMIT;
+use crate::engine::{Backbone, ForwardOptions, RunControl};
+use crate::error::{Error, Result};
+use candle_core::Tensor;
+use clap::Args;
+
+#[derive(Args, Debug)]
+pub struct BenchArgs {
+    /// Published model size: tiny, small, base, large (or T, S, B, L).
+    #[arg(long, value_enum, default_value = "tiny")]
+    pub preset: PresetArg,
+    /// Square input side in pixels (or HxW).
+    #[arg(long, default_value = "224", value_parser = parse_size, value_name = "N|HxW")]
+    pub size: (usize, usize),
+    /// Timed runs after one warm-up.
+    #[arg(long, default_value_t = 10)]
+    pub runs: usize,
+}
+
+/// Peak resident memory of this process in MB (Linux; 0 elsewhere).
+pub fn peak_rss_mb() -> f64 {
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("VmHWM:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|kb| kb.parse::<f64>().ok())
+        })
+        .map_or(0.0, |kb| kb / 1024.0)
+}
+
+/// The median of a non-empty list of times.
+fn median(times: &mut [f64]) -> f64 {
+    times.sort_by(f64::total_cmp);
+    let n = times.len();
+    if n % 2 == 1 {
+        times[n / 2]
+    } else {
+        (times[n / 2 - 1] + times[n / 2]) / 2.0
+    }
+}
+
+pub fn run(args: &BenchArgs) -> Result<()> {
+    let config = args.preset.config();
+    let (h, w) = args.size;
+    if args.runs == 0 {
+        return Err(Error::BadArgument("--runs must be at least 1".into()));
+    }
+    let model = Backbone::random(config.clone(), 0)?;
+    let semantics = model.default_semantics;
+    model.check_memory((h, w), None, DEFAULT_MEMORY_LIMIT)?;
+    let x = Tensor::randn(0f32, 1f32, (3, h, w), &candle_core::Device::Cpu)?;
+    let opts = ForwardOptions::default();
+    let ctl = RunControl::default();
+    model.forward(&x, &opts, &ctl)?; // warm-up
+    let mut times = Vec::with_capacity(args.runs);
+    for _ in 0..args.runs {
+        let t = std::time::Instant::now();
+        model.forward(&x, &opts, &ctl)?;
+        times.push(t.elapsed().as_secs_f64() * 1e3);
+    }
+    let median = median(&mut times);
+    let gmac = config.multiply_adds((h, w), semantics, None) as f64 / 1e9;
+    println!(
+        "preset {} at {h}x{w}, random weights, {} runs: min {:.1} ms, max {:.1} ms, {:.1} GMAC ({:.1} GMAC/s)",
+        args.preset.name(),
+        args.runs,
+        times[0],
+        times[times.len() - 1],
+        gmac,
+        gmac / (median / 1e3)
+    );
+    println!("median_ms={median:.3} peak_rss_mb={:.1}", peak_rss_mb());
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn median_of_odd_and_even_lists() {
+        assert_eq!(median(&mut [3.0, 1.0, 2.0]), 2.0);
+        assert_eq!(median(&mut [4.0, 1.0, 2.0, 3.0]), 2.5);
+    }
+}

@@ -1,0 +1,190 @@
+//! Arguments shared by several subcommands, and the typed values they parse into. Clap stops
+//! here: every command turns its arguments into the library's own typed options.
+
+use crate::analysis::{parse_map_kind, Colormap, MapKind};
+use crate::engine::geometry::{PadOrder, SmallStage};
+use crate::engine::input::{memory_limit_from_gb, parse_triple, DEFAULT_MEMORY_GB};
+use crate::engine::{Config, SessionOptions};
+use crate::error::{Error, Result};
+use clap::{Args, ValueEnum};
+use std::path::PathBuf;
+use std::sync::Arc;
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum PadOrderArg {
+    PadThenShift,
+    ShiftThenPad,
+}
+
+impl From<PadOrderArg> for PadOrder {
+    fn from(a: PadOrderArg) -> Self {
+        match a {
+            PadOrderArg::PadThenShift => PadOrder::PadThenShift,
+            PadOrderArg::ShiftThenPad => PadOrder::ShiftThenPad,
+        }
+    }
+}
+
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum SmallStageArg {
+    Clamp,
+    PadUp,
+    ClampPerAxis,
+}
+
+impl From<SmallStageArg> for SmallStage {
+    fn from(a: SmallStageArg) -> Self {
+        match a {
+            SmallStageArg::Clamp => SmallStage::Clamp,
+            SmallStageArg::PadUp => SmallStage::PadUp,
+            SmallStageArg::ClampPerAxis => SmallStage::ClampPerAxis,
+        }
+    }
+}
+
+/// A colour map, as the command line spells it.
+#[derive(Clone, Copy, Debug, Default, ValueEnum)]
+pub enum ColormapArg {
+    #[default]
+    Viridis,
+    Magma,
+    Cividis,
+}
+
+impl From<ColormapArg> for Colormap {
+    fn from(a: ColormapArg) -> Self {
+        match a {
+            ColormapArg::Viridis => Colormap::Viridis,
+            ColormapArg::Magma => Colormap::Magma,
+            ColormapArg::Cividis => Colormap::Cividis,
+        }
+    }
+}
+
+/// One of the published model sizes (Liu et al. 2021, Sec. 3.3).
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum PresetArg {
+    #[value(alias = "T", alias = "t")]
+    Tiny,
+    #[value(alias = "S", alias = "s")]
+    Small,
+    #[value(alias = "B", alias = "b")]
+    Base,
+    #[value(alias = "L", alias = "l")]
+    Large,
+}
+
+impl PresetArg {
+    pub fn name(self) -> &'static str {
+        match self {
+            PresetArg::Tiny => "tiny",
+            PresetArg::Small => "small",
+            PresetArg::Base => "base",
+            PresetArg::Large => "large",
+        }
+    }
+
+    pub fn config(self) -> Config {
+        Config::preset(self.name()).expect("every preset argument names a published size")
+    }
+}
+
+/// A map kind parsed from `norm`, `channel:N` or `pca`.
+#[derive(Clone)]
+pub struct MapArg(pub Arc<dyn MapKind>);
+
+impl std::fmt::Debug for MapArg {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "MapArg({})", self.0.id())
+    }
+}
+
+impl MapArg {
+    pub fn is_scalar(&self) -> bool {
+        self.0.id() != "pca"
+    }
+}
+
+/// Clap's parser for [`MapArg`].
+pub fn parse_map(s: &str) -> std::result::Result<MapArg, String> {
+    parse_map_kind(s)
+        .map(|k| MapArg(Arc::from(k)))
+        .map_err(|e| e.to_string())
+}
+
+/// Percentiles `LOW,HIGH` that set a colour range.
+pub fn parse_clip(s: &str) -> std::result::Result<(f32, f32), String> {
+    let bad = || format!("'{s}': expected LOW,HIGH, e.g. 1,99");
+    let (a, b) = s.split_once(',').ok_or_else(bad)?;
+    let a: f32 = a.trim().parse().map_err(|_| bad())?;
+    let b: f32 = b.trim().parse().map_err(|_| bad())?;
+    Ok((a, b))
+}
+
+/// `S` or `HxW` into (height, width).
+pub fn parse_size(s: &str) -> std::result::Result<(usize, usize), String> {
+    let bad = || format!("'{s}': expected N or HxW, e.g. 224 or 480x640");
+    let parse = |p: &str| p.trim().parse::<usize>().ok().filter(|&v| v > 0);
+    match s.split_once(['x', 'X']) {
+        Some((h, w)) => Ok((parse(h).ok_or_else(bad)?, parse(w).ok_or_else(bad)?)),
+        None => parse(s).map(|v| (v, v)).ok_or_else(bad),
+    }
+}
+
+/// Options shared by every command that runs a checkpoint on an image.
+#[derive(Args, Debug, Clone)]
+pub struct RunArgs {
+    /// Checkpoint file (.safetensors, .pth, .pt, .bin).
+    #[arg(long, value_name = "FILE")]
+    pub weights: PathBuf,
+    /// JSON file overriding the shape read from the tensors (patch, embed_dim, depths, heads,
+    /// window, mlp_ratio, pad_order, small_stage).
+    #[arg(long, value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Padding order in shifted blocks [default: from the checkpoint's layout].
+    #[arg(long, value_enum)]
+    pub pad_order: Option<PadOrderArg>,
+    /// What a stage not larger than the window does [default: from the checkpoint's layout].
+    #[arg(long, value_enum)]
+    pub small_stage: Option<SmallStageArg>,
+    /// Normalisation mean, R,G,B [default: ImageNet 0.485,0.456,0.406].
+    #[arg(long, value_parser = parse_triple, value_name = "R,G,B")]
+    pub mean: Option<[f32; 3]>,
+    /// Normalisation std, R,G,B [default: ImageNet 0.229,0.224,0.225].
+    #[arg(long, value_parser = parse_triple, value_name = "R,G,B")]
+    pub std: Option<[f32; 3]>,
+    /// Refuse inputs whose forward pass would need more memory than this.
+    #[arg(long, default_value_t = DEFAULT_MEMORY_GB, value_name = "GB")]
+    pub max_memory_gb: f64,
+}
+
+impl RunArgs {
+    /// The typed session options these arguments ask for.
+    pub fn session_options(&self) -> Result<SessionOptions> {
+        let memory_limit = memory_limit_from_gb(self.max_memory_gb).ok_or_else(|| {
+            Error::BadArgument("--max-memory-gb must be a positive number".into())
+        })?;
+        Ok(SessionOptions {
+            weights: self.weights.clone(),
+            config: self.config.clone(),
+            pad_order: self.pad_order.map(Into::into),
+            small_stage: self.small_stage.map(Into::into),
+            mean: self.mean,
+            std: self.std,
+            memory_limit,
+        })
+    }
+
+    /// Arguments for `weights` with every default, for tests and code that builds commands.
+    pub fn for_weights(weights: impl Into<PathBuf>) -> Self {
+        RunArgs {
+            weights: weights.into(),
+            config: None,
+            pad_order: None,
+            small_stage: None,
+            mean: None,
+            std: None,
+            max_memory_gb: DEFAULT_MEMORY_GB,
+        }
+    }
+}

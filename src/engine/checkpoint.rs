@@ -1,0 +1,722 @@
+//! Checkpoints as users have them: safetensors (memory-mapped) and PyTorch pickles, in the key
+//! layouts of the common training libraries, possibly wrapped inside a detector or segmenter.
+//!
+//! The loader finds the layout and the wrapper prefix, maps every tensor the backbone needs to
+//! one canonical part name ([`Part`]), reads the model shape off the tensor shapes, and keeps a
+//! plain-words account of what it used, ignored and could not find ([`LoadReport`]).
+
+use super::config::{Config, ConfigOverride};
+use crate::engine::geometry::{PadOrder, Semantics, SmallStage};
+use crate::error::{Error, Result};
+use candle_core::{DType, Device, Tensor};
+use std::cell::RefCell;
+use std::collections::{BTreeMap, BTreeSet};
+use std::io::Read;
+use std::path::{Path, PathBuf};
+
+/// The key layouts Mullion reads.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize)]
+pub enum LayoutKind {
+    /// timm >= 0.9: patch merging at the start of a stage (`layers.{i}.downsample`, i >= 1).
+    Timm,
+    /// The original release and detector/segmenter backbones: the same block names, patch
+    /// merging at the end of stage i, optional per-stage output norms `norm{i}`.
+    Original,
+    /// transformers 4.x: `attention.self.query/key/value`, `intermediate.dense`, ...
+    Transformers4,
+    /// transformers 5.x: `attention.q_proj/k_proj/v_proj/o_proj`, `mlp.fc1/fc2`, ...
+    Transformers5,
+}
+
+impl LayoutKind {
+    pub fn describe(self) -> &'static str {
+        match self {
+            LayoutKind::Timm => "timm >= 0.9 (patch merging at the start of each stage)",
+            LayoutKind::Original => {
+                "original / detector backbone (patch merging at the end of each stage)"
+            }
+            LayoutKind::Transformers4 => "transformers 4.x",
+            LayoutKind::Transformers5 => "transformers 5.x",
+        }
+    }
+
+    /// The padding semantics the library that writes this layout computes with. Backbones
+    /// that carry per-stage output norms come from dense-prediction code (the detection
+    /// release; transformers' backbone class), which always partitions: small stages are padded
+    /// up to the window and keep their shift.
+    pub fn default_semantics(self, has_stage_norms: bool) -> Semantics {
+        match self {
+            LayoutKind::Timm => Semantics {
+                pad_order: PadOrder::ShiftThenPad,
+                small_stage: SmallStage::ClampPerAxis,
+            },
+            LayoutKind::Original | LayoutKind::Transformers4 | LayoutKind::Transformers5 => {
+                Semantics {
+                    pad_order: PadOrder::PadThenShift,
+                    small_stage: if has_stage_norms {
+                        SmallStage::PadUp
+                    } else {
+                        SmallStage::Clamp
+                    },
+                }
+            }
+        }
+    }
+}
+
+/// A canonical tensor of the backbone. Names inside a part follow timm's spelling
+/// (`proj.weight`, `norm1.bias`, `attn.qkv.weight`, `mlp.fc1.weight` ...).
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum Part {
+    /// Patch embedding: `proj.weight`, `proj.bias`, `norm.weight`, `norm.bias`.
+    Embed(String),
+    /// Patch merging that starts stage `i` (i >= 1): `norm.weight`, `norm.bias`, `reduction.weight`.
+    Merge(usize, String),
+    /// Block `j` of stage `i`.
+    Block(usize, usize, String),
+    /// Output norm of stage `i` (detector backbones): `weight`, `bias`.
+    StageNorm(usize, String),
+    /// Final norm after the last stage: `weight`, `bias`.
+    FinalNorm(String),
+}
+
+impl Part {
+    pub fn embed(s: &str) -> Part {
+        Part::Embed(s.into())
+    }
+    pub fn merge(i: usize, s: &str) -> Part {
+        Part::Merge(i, s.into())
+    }
+    pub fn block(i: usize, j: usize, s: &str) -> Part {
+        Part::Block(i, j, s.into())
+    }
+
+    /// The canonical name, as the load report prints it.
+    pub fn canonical(&self) -> String {
+        match self {
+            Part::Embed(s) => format!("patch_embed.{s}"),
+            Part::Merge(i, s) => format!("layers.{i}.downsample.{s}"),
+            Part::Block(i, j, s) => format!("layers.{i}.blocks.{j}.{s}"),
+            Part::StageNorm(i, s) => format!("stage_norm.{i}.{s}"),
+            Part::FinalNorm(s) => format!("norm.{s}"),
+        }
+    }
+}
+
+/// How one canonical tensor is read from the file.
+#[derive(Clone, Debug, PartialEq)]
+enum Recipe {
+    One(String),
+    /// Concatenated along dim 0 (transformers' separate q, k, v).
+    Cat(Vec<String>),
+}
+
+impl Recipe {
+    fn names(&self) -> Vec<&str> {
+        match self {
+            Recipe::One(n) => vec![n.as_str()],
+            Recipe::Cat(v) => v.iter().map(String::as_str).collect(),
+        }
+    }
+}
+
+/// A key layout and the wrapper prefix it sits under.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Layout {
+    pub kind: LayoutKind,
+    pub prefix: String,
+}
+
+fn block_name_tf4(part: &str) -> Recipe {
+    let one = |s: &str| Recipe::One(s.to_string());
+    let qkv = |wb: &str| {
+        Recipe::Cat(
+            ["query", "key", "value"]
+                .iter()
+                .map(|q| format!("attention.self.{q}.{wb}"))
+                .collect(),
+        )
+    };
+    match part {
+        "attn.qkv.weight" => qkv("weight"),
+        "attn.qkv.bias" => qkv("bias"),
+        "attn.relative_position_bias_table" => one("attention.self.relative_position_bias_table"),
+        _ => {
+            let (module, wb) = part.rsplit_once('.').unwrap_or((part, ""));
+            let m = match module {
+                "norm1" => "layernorm_before",
+                "norm2" => "layernorm_after",
+                "attn.proj" => "attention.output.dense",
+                "mlp.fc1" => "intermediate.dense",
+                "mlp.fc2" => "output.dense",
+                other => other,
+            };
+            Recipe::One(format!("{m}.{wb}"))
+        }
+    }
+}
+
+fn block_name_tf5(part: &str) -> Recipe {
+    let qkv = |wb: &str| {
+        Recipe::Cat(
+            ["q_proj", "k_proj", "v_proj"]
+                .iter()
+                .map(|q| format!("attention.{q}.{wb}"))
+                .collect(),
+        )
+    };
+    match part {
+        "attn.qkv.weight" => qkv("weight"),
+        "attn.qkv.bias" => qkv("bias"),
+        "attn.relative_position_bias_table" => {
+            Recipe::One("attention.relative_position_bias.relative_position_bias_table".into())
+        }
+        _ => {
+            let (module, wb) = part.rsplit_once('.').unwrap_or((part, ""));
+            let m = match module {
+                "norm1" => "layernorm_before",
+                "norm2" => "layernorm_after",
+                "attn.proj" => "attention.o_proj",
+                other => other, // mlp.fc1, mlp.fc2 keep their names
+            };
+            Recipe::One(format!("{m}.{wb}"))
+        }
+    }
+}
+
+impl Layout {
+    /// Where a part may be, in order of preference. transformers 5.x backbones keep the model
+    /// under `swin.` but their per-stage norms beside it, so those are also looked for one
+    /// prefix level up.
+    fn recipes(&self, part: &Part) -> Vec<Recipe> {
+        let mut out = vec![self.recipe(part)];
+        if let (Part::StageNorm(..), LayoutKind::Transformers4 | LayoutKind::Transformers5) =
+            (part, self.kind)
+        {
+            let trimmed = self.prefix.trim_end_matches('.');
+            let parent = match trimmed.rsplit_once('.') {
+                Some((head, _)) => format!("{head}."),
+                None => String::new(),
+            };
+            if parent != self.prefix {
+                out.push(
+                    Layout {
+                        kind: self.kind,
+                        prefix: parent,
+                    }
+                    .recipe(part),
+                );
+            }
+        }
+        out
+    }
+
+    fn recipe(&self, part: &Part) -> Recipe {
+        let p = &self.prefix;
+        let one = |s: String| Recipe::One(s);
+        match self.kind {
+            LayoutKind::Timm | LayoutKind::Original => match part {
+                Part::Embed(s) => one(format!("{p}patch_embed.{s}")),
+                Part::Merge(i, s) if self.kind == LayoutKind::Timm => {
+                    one(format!("{p}layers.{i}.downsample.{s}"))
+                }
+                Part::Merge(i, s) => one(format!("{p}layers.{}.downsample.{s}", i - 1)),
+                Part::Block(i, j, s) => one(format!("{p}layers.{i}.blocks.{j}.{s}")),
+                Part::StageNorm(i, s) => one(format!("{p}norm{i}.{s}")),
+                Part::FinalNorm(s) => one(format!("{p}norm.{s}")),
+            },
+            LayoutKind::Transformers4 | LayoutKind::Transformers5 => match part {
+                Part::Embed(s) => {
+                    let s = s.replacen("proj.", "patch_embeddings.projection.", 1);
+                    one(format!("{p}embeddings.{s}"))
+                }
+                Part::Merge(i, s) => one(format!("{p}encoder.layers.{}.downsample.{s}", i - 1)),
+                Part::Block(i, j, s) => {
+                    let inner = if self.kind == LayoutKind::Transformers4 {
+                        block_name_tf4(s)
+                    } else {
+                        block_name_tf5(s)
+                    };
+                    let at = |n: &String| format!("{p}encoder.layers.{i}.blocks.{j}.{n}");
+                    match inner {
+                        Recipe::One(n) => Recipe::One(at(&n)),
+                        Recipe::Cat(v) => Recipe::Cat(v.iter().map(at).collect()),
+                    }
+                }
+                Part::StageNorm(i, s) => one(format!("{p}hidden_states_norms.stage{}.{s}", i + 1)),
+                Part::FinalNorm(s) => one(format!("{p}layernorm.{s}")),
+            },
+        }
+    }
+}
+
+/// Where the tensors come from.
+enum Store {
+    Safetensors(candle_core::safetensors::MmapedSafetensors),
+    Pickle(candle_core::pickle::PthTensors),
+}
+
+/// An opened checkpoint file: its tensors' names and shapes, and the layout found in it.
+pub struct Checkpoint {
+    pub path: PathBuf,
+    store: Store,
+    /// Shape and stored dtype of every tensor in the file.
+    shapes: BTreeMap<String, (Vec<usize>, DType)>,
+    /// Key under which a pickle nested its state dict, if any.
+    pub nested_under: Option<String>,
+    pub layout: Layout,
+    /// Backbone prefixes found besides the one used.
+    pub other_prefixes: Vec<String>,
+    used: RefCell<BTreeSet<String>>,
+}
+
+/// What kind of file this is, from its first bytes.
+fn sniff(path: &Path) -> Result<&'static str> {
+    let mut head = [0u8; 16];
+    let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let mut n = 0;
+    while n < head.len() {
+        match f.read(&mut head[n..]).map_err(|e| Error::io(path, e))? {
+            0 => break,
+            k => n += k,
+        }
+    }
+    let head = &head[..n];
+    if head.len() >= 9 && head[8] == b'{' {
+        return Ok("safetensors");
+    }
+    if head.starts_with(b"PK\x03\x04") {
+        return Ok("zip");
+    }
+    if head.first() == Some(&0x80) {
+        return Err(Error::bad_file(
+            path,
+            "this is a PyTorch file in the legacy (pre-1.6) pickle format, which Mullion cannot \
+             read; re-save it with torch.save(state_dict, path) in a recent PyTorch, or as \
+             safetensors",
+        ));
+    }
+    if n == 0 {
+        return Err(Error::bad_file(path, "the file is empty"));
+    }
+    Err(Error::bad_file(
+        path,
+        "not a checkpoint: neither a safetensors file nor a PyTorch (.pth/.pt/.bin) archive",
+    ))
+}
+
+/// Markers that identify a layout: the patch embedding's projection weight.
+const EMBED_MARKERS: [(&str, bool); 2] = [
+    ("patch_embed.proj.weight", false),
+    ("embeddings.patch_embeddings.projection.weight", true),
+];
+
+/// Find the layout and prefix from the tensor names.
+fn detect_layout(
+    path: &Path,
+    shapes: &BTreeMap<String, (Vec<usize>, DType)>,
+) -> Result<(Layout, Vec<String>)> {
+    let mut found: Vec<(String, bool)> = Vec::new();
+    for name in shapes.keys() {
+        for (marker, hf) in EMBED_MARKERS {
+            if let Some(prefix) = name.strip_suffix(marker) {
+                if prefix.is_empty() || prefix.ends_with('.') {
+                    found.push((prefix.to_string(), hf));
+                }
+            }
+        }
+    }
+    if found.is_empty() {
+        let sample: Vec<_> = shapes.keys().take(5).cloned().collect();
+        return Err(Error::bad_file(
+            path,
+            format!(
+                "no shifted-window backbone found: no patch embedding tensor \
+                 (`patch_embed.proj.weight` or `embeddings.patch_embeddings.projection.weight`) \
+                 among its {} tensors (first: {})",
+                shapes.len(),
+                sample.join(", ")
+            ),
+        ));
+    }
+    // Several backbones (e.g. a teacher and a student): take the shortest prefix.
+    found.sort_by_key(|(p, _)| (p.len(), p.clone()));
+    let (prefix, hf) = found[0].clone();
+    let others = found[1..].iter().map(|(p, _)| p.clone()).collect();
+    let has = |n: &str| shapes.contains_key(&format!("{prefix}{n}"));
+    let kind = if hf {
+        if has("encoder.layers.0.blocks.0.attention.self.query.weight") {
+            LayoutKind::Transformers4
+        } else {
+            LayoutKind::Transformers5
+        }
+    } else if has("layers.0.downsample.reduction.weight") {
+        LayoutKind::Original
+    } else {
+        LayoutKind::Timm
+    };
+    Ok((Layout { kind, prefix }, others))
+}
+
+impl Checkpoint {
+    /// Open a checkpoint, read its tensor index and detect its layout. Reads no tensor data.
+    pub fn open(path: impl AsRef<Path>) -> Result<Checkpoint> {
+        let path = path.as_ref().to_path_buf();
+        let kind = sniff(&path)?;
+        let mut nested_under = None;
+        let (store, shapes) = match kind {
+            "safetensors" => {
+                // SAFETY: the file is mapped read-only; Mullion never writes to checkpoint files,
+                // and a file changed underneath by another program is outside what we promise.
+                let st = unsafe { candle_core::safetensors::MmapedSafetensors::new(&path) }
+                    .map_err(|e| {
+                        Error::bad_file(
+                            &path,
+                            format!("not a readable safetensors file (truncated or corrupt?): {e}"),
+                        )
+                    })?;
+                let mut shapes = BTreeMap::new();
+                for (name, view) in st.tensors() {
+                    let dtype = DType::try_from(view.dtype()).map_err(|_| {
+                        Error::bad_file(
+                            &path,
+                            format!(
+                                "tensor {name} has a dtype Mullion cannot read ({:?})",
+                                view.dtype()
+                            ),
+                        )
+                    })?;
+                    shapes.insert(name, (view.shape().to_vec(), dtype));
+                }
+                (Store::Safetensors(st), shapes)
+            }
+            _ => {
+                let read = |key: Option<&str>| candle_core::pickle::PthTensors::new(&path, key);
+                let mut chosen = None;
+                for key in [
+                    "state_dict",
+                    "model",
+                    "module",
+                    "model_state_dict",
+                    "state_dict_ema",
+                ] {
+                    if let Ok(p) = read(Some(key)) {
+                        if !p.tensor_infos().is_empty() {
+                            nested_under = Some(key.to_string());
+                            chosen = Some(p);
+                            break;
+                        }
+                    }
+                }
+                let pth = match chosen {
+                    Some(p) => p,
+                    None => read(None).map_err(|e| {
+                        Error::bad_file(
+                            &path,
+                            format!("not a readable PyTorch archive (truncated or corrupt?): {e}"),
+                        )
+                    })?,
+                };
+                let shapes = pth
+                    .tensor_infos()
+                    .iter()
+                    .map(|(k, v)| (k.clone(), (v.layout.shape().dims().to_vec(), v.dtype)))
+                    .collect();
+                (Store::Pickle(pth), shapes)
+            }
+        };
+        if shapes.is_empty() {
+            return Err(Error::bad_file(&path, "the file holds no tensors"));
+        }
+        let (layout, other_prefixes) = detect_layout(&path, &shapes)?;
+        Ok(Checkpoint {
+            path,
+            store,
+            shapes,
+            nested_under,
+            layout,
+            other_prefixes,
+            used: RefCell::new(BTreeSet::new()),
+        })
+    }
+
+    /// The first way of reading `part` whose tensors are all in the file (else the preferred one).
+    fn resolve(&self, part: &Part) -> Recipe {
+        let all = self.layout.recipes(part);
+        all.iter()
+            .find(|r| r.names().iter().all(|n| self.shapes.contains_key(*n)))
+            .unwrap_or(&all[0])
+            .clone()
+    }
+
+    /// Shape of a canonical part, if every tensor it is made of is present.
+    pub fn shape(&self, part: &Part) -> Option<Vec<usize>> {
+        match self.resolve(part) {
+            Recipe::One(n) => self.shapes.get(&n).map(|s| s.0.clone()),
+            Recipe::Cat(names) => {
+                let mut out: Option<Vec<usize>> = None;
+                for n in names {
+                    let s = self.shapes.get(&n)?.0.clone();
+                    out = Some(match out {
+                        None => s,
+                        Some(mut acc) => {
+                            if acc.len() != s.len() || acc[1..] != s[1..] {
+                                return None;
+                            }
+                            acc[0] += s[0];
+                            acc
+                        }
+                    });
+                }
+                out
+            }
+        }
+    }
+
+    pub fn has(&self, part: &Part) -> bool {
+        self.shape(part).is_some()
+    }
+
+    /// The file's names for a part (for messages).
+    pub fn file_names(&self, part: &Part) -> Vec<String> {
+        self.layout
+            .recipe(part)
+            .names()
+            .into_iter()
+            .map(String::from)
+            .collect()
+    }
+
+    fn load_raw(&self, name: &str) -> Result<Tensor> {
+        let dev = Device::Cpu;
+        let t = match &self.store {
+            Store::Safetensors(st) => st.load(name, &dev).map_err(|e| {
+                Error::bad_file(&self.path, format!("cannot read tensor {name}: {e}"))
+            })?,
+            Store::Pickle(p) => p
+                .get(name)
+                .map_err(|e| {
+                    Error::bad_file(&self.path, format!("cannot read tensor {name}: {e}"))
+                })?
+                .ok_or_else(|| Error::bad_file(&self.path, format!("tensor {name} is missing")))?,
+        };
+        self.used.borrow_mut().insert(name.to_string());
+        Ok(t.to_dtype(DType::F32)?)
+    }
+
+    /// Load a canonical part as f32 with the expected shape.
+    pub fn load(&self, part: &Part, expected: &[usize]) -> Result<Tensor> {
+        let recipe = self.resolve(part);
+        let shape = self.shape(part).ok_or_else(|| {
+            Error::bad_file(
+                &self.path,
+                format!("missing tensor {}", recipe.names().join(" + ")),
+            )
+        })?;
+        if shape != expected {
+            return Err(Error::bad_file(
+                &self.path,
+                format!(
+                    "tensor {} has shape {:?}; the backbone needs {:?} there",
+                    recipe.names().join(" + "),
+                    shape,
+                    expected
+                ),
+            ));
+        }
+        let t = match recipe {
+            Recipe::One(n) => self.load_raw(&n)?,
+            Recipe::Cat(names) => {
+                let parts = names
+                    .iter()
+                    .map(|n| self.load_raw(n))
+                    .collect::<Result<Vec<_>>>()?;
+                Tensor::cat(&parts, 0)?
+            }
+        };
+        Ok(t.contiguous()?)
+    }
+
+    /// Number of tensors in the file.
+    pub fn len(&self) -> usize {
+        self.shapes.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.shapes.is_empty()
+    }
+
+    /// Read the model shape off the tensors; `over` fields win.
+    pub fn infer_config(&self, over: &ConfigOverride) -> Result<Config> {
+        let bad = |m: String| Error::bad_file(&self.path, m);
+        let proj = self
+            .shape(&Part::embed("proj.weight"))
+            .ok_or_else(|| bad("missing the patch embedding weight".into()))?;
+        if proj.len() != 4 || proj[2] != proj[3] {
+            return Err(bad(format!(
+                "patch embedding weight {} has shape {proj:?}; expected [C, 3, p, p]",
+                self.file_names(&Part::embed("proj.weight")).join("")
+            )));
+        }
+        let (embed_dim, in_chans, patch) = (proj[0], proj[1], proj[2]);
+        let mut depths = Vec::new();
+        while self.has(&Part::block(depths.len(), 0, "norm1.weight")) {
+            let i = depths.len();
+            let mut d = 0;
+            while self.has(&Part::block(i, d, "norm1.weight")) {
+                d += 1;
+            }
+            depths.push(d);
+        }
+        if depths.is_empty() {
+            return Err(bad(format!(
+                "found a patch embedding but no blocks (expected e.g. {})",
+                self.file_names(&Part::block(0, 0, "norm1.weight")).join("")
+            )));
+        }
+        let mut heads = Vec::new();
+        let mut window: Option<(usize, usize)> = None;
+        for i in 0..depths.len() {
+            let part = Part::block(i, 0, "attn.relative_position_bias_table");
+            let t = self.shape(&part).ok_or_else(|| {
+                bad(format!(
+                    "missing tensor {}",
+                    self.file_names(&part).join("")
+                ))
+            })?;
+            if t.len() != 2 {
+                return Err(bad(format!(
+                    "bias table {} has shape {t:?}; expected [rows, heads]",
+                    self.file_names(&part).join("")
+                )));
+            }
+            heads.push(t[1]);
+            if let Some(m) = square_window(t[0]) {
+                window = Some(window.map_or((m, m), |w| if m > w.0 { (m, m) } else { w }));
+            }
+        }
+        let fc1 = self
+            .shape(&Part::block(0, 0, "mlp.fc1.weight"))
+            .ok_or_else(|| {
+                bad(format!(
+                    "missing tensor {}",
+                    self.file_names(&Part::block(0, 0, "mlp.fc1.weight"))
+                        .join("")
+                ))
+            })?;
+        let mlp_ratio = fc1[0] as f64 / embed_dim as f64;
+        let window =
+            match (over.window, window) {
+                (Some(w), _) => w.dims(),
+                (None, Some(w)) => w,
+                (None, None) => return Err(bad(
+                    "no stage has a square window ((2M-1)^2 bias table rows), so the window size \
+                     cannot be read from the tensors; give it in a config file (\"window\": M)"
+                        .into(),
+                )),
+            };
+        let cfg = Config {
+            in_chans,
+            patch: over.patch.unwrap_or(patch),
+            embed_dim: over.embed_dim.unwrap_or(embed_dim),
+            depths: over.depths.clone().unwrap_or(depths),
+            heads: over.heads.clone().unwrap_or(heads),
+            window,
+            mlp_ratio: over.mlp_ratio.unwrap_or(mlp_ratio),
+        };
+        cfg.validate()
+            .map_err(|m| bad(format!("inconsistent model shape: {m}")))?;
+        Ok(cfg)
+    }
+
+    /// The tensors used so far (file names).
+    pub fn used(&self) -> BTreeSet<String> {
+        self.used.borrow().clone()
+    }
+
+    /// All tensor names in the file.
+    pub fn names(&self) -> impl Iterator<Item = &String> {
+        self.shapes.keys()
+    }
+
+    /// Elements in the named tensors.
+    pub fn parameter_count(&self, names: &BTreeSet<String>) -> u64 {
+        names
+            .iter()
+            .filter_map(|n| self.shapes.get(n))
+            .map(|(s, _)| s.iter().product::<usize>() as u64)
+            .sum()
+    }
+
+    pub fn stored_dtypes(&self) -> BTreeSet<String> {
+        self.shapes
+            .values()
+            .map(|(_, d)| format!("{d:?}").to_lowercase())
+            .collect()
+    }
+}
+
+/// `M` when `rows == (2M-1)^2`.
+pub fn square_window(rows: usize) -> Option<usize> {
+    let r = (rows as f64).sqrt().round() as usize;
+    (r * r == rows && r % 2 == 1).then_some(r.div_ceil(2))
+}
+
+/// Why a tensor in the file was not used.
+pub fn ignored_reason(name: &str) -> &'static str {
+    if name.ends_with("relative_position_index") || name.ends_with("attn_mask") {
+        "buffer, recomputed"
+    } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
+        "head / classifier"
+    } else if name.contains("neck") || name.contains("fpn") || name.contains("decode") {
+        "neck / decoder"
+    } else {
+        "not part of the backbone"
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn square_windows_from_table_rows() {
+        assert_eq!(square_window(169), Some(7));
+        assert_eq!(square_window(529), Some(12));
+        assert_eq!(square_window(1), Some(1));
+        assert_eq!(square_window(168), None);
+        assert_eq!(square_window(144), None); // 12^2: even side is no (2M-1)^2
+    }
+
+    #[test]
+    fn recipes_per_layout() {
+        let tf = Layout {
+            kind: LayoutKind::Transformers4,
+            prefix: "swin.".into(),
+        };
+        assert_eq!(
+            tf.recipe(&Part::block(1, 0, "attn.qkv.bias")),
+            Recipe::Cat(vec![
+                "swin.encoder.layers.1.blocks.0.attention.self.query.bias".into(),
+                "swin.encoder.layers.1.blocks.0.attention.self.key.bias".into(),
+                "swin.encoder.layers.1.blocks.0.attention.self.value.bias".into(),
+            ])
+        );
+        assert_eq!(
+            tf.recipe(&Part::merge(2, "reduction.weight")),
+            Recipe::One("swin.encoder.layers.1.downsample.reduction.weight".into())
+        );
+        let det = Layout {
+            kind: LayoutKind::Original,
+            prefix: "backbone.".into(),
+        };
+        assert_eq!(
+            det.recipe(&Part::merge(1, "norm.weight")),
+            Recipe::One("backbone.layers.0.downsample.norm.weight".into())
+        );
+        assert_eq!(
+            det.recipe(&Part::StageNorm(3, "bias".into())),
+            Recipe::One("backbone.norm3.bias".into())
+        );
+    }
+}

@@ -1,0 +1,92 @@
+//! Runs the backbone off the calling thread, with progress and cancel.
+//!
+//! The window never runs the model itself: it starts a [`Job`], polls its events each frame and
+//! cancels it when a newer request supersedes it.
+
+use super::model::{Backbone, ForwardOptions, Progress, RunControl, StageOutputs};
+use crate::error::{Error, Result};
+use candle_core::Tensor;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::mpsc::{channel, Receiver, TryRecvError};
+use std::sync::Arc;
+
+pub enum Event {
+    Progress(Progress),
+    Finished(Result<Arc<StageOutputs>>),
+}
+
+/// A forward pass running on its own thread.
+pub struct Job {
+    rx: Receiver<Event>,
+    cancel: Arc<AtomicBool>,
+}
+
+impl Job {
+    /// Start `model.forward(image)` on a new thread. `wake` is called after every event (the
+    /// window passes a repaint request).
+    pub fn spawn(
+        model: Arc<Backbone>,
+        image: Tensor,
+        opts: ForwardOptions,
+        wake: Option<Box<dyn Fn() + Send + Sync>>,
+    ) -> Job {
+        let (tx, rx) = channel();
+        let cancel = Arc::new(AtomicBool::new(false));
+        let flag = cancel.clone();
+        std::thread::Builder::new()
+            .name("mullion-forward".into())
+            .spawn(move || {
+                let wake = wake.as_deref();
+                let progress_tx = std::sync::Mutex::new(tx.clone());
+                let progress = |p: Progress| {
+                    if let Ok(tx) = progress_tx.lock() {
+                        let _ = tx.send(Event::Progress(p));
+                    }
+                    if let Some(w) = wake {
+                        w();
+                    }
+                };
+                let ctl = RunControl {
+                    progress: Some(&progress),
+                    cancel: Some(&flag),
+                };
+                let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    model.forward(&image, &opts, &ctl)
+                }))
+                .unwrap_or_else(|_| Err(Error::Internal("the forward pass panicked".into())));
+                let _ = tx.send(Event::Finished(result.map(Arc::new)));
+                if let Some(w) = wake {
+                    w();
+                }
+            })
+            .expect("spawn worker thread");
+        Job { rx, cancel }
+    }
+
+    /// Ask the run to stop at the next block boundary.
+    pub fn cancel(&self) {
+        self.cancel.store(true, Ordering::Relaxed);
+    }
+
+    /// The next event, if one is waiting.
+    pub fn poll(&self) -> Option<Event> {
+        match self.rx.try_recv() {
+            Ok(e) => Some(e),
+            Err(TryRecvError::Empty) => None,
+            Err(TryRecvError::Disconnected) => Some(Event::Finished(Err(Error::Internal(
+                "the worker thread stopped".into(),
+            )))),
+        }
+    }
+
+    /// Block until the run ends; progress events go to `on_progress`.
+    pub fn wait(self, mut on_progress: impl FnMut(Progress)) -> Result<Arc<StageOutputs>> {
+        loop {
+            match self.rx.recv() {
+                Ok(Event::Progress(p)) => on_progress(p),
+                Ok(Event::Finished(r)) => return r,
+                Err(_) => return Err(Error::Internal("the worker thread stopped".into())),
+            }
+        }
+    }
+}

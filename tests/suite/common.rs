@@ -1,0 +1,52 @@
+//! Helpers every test module shares: running the `mullion` binary, and paths to the bundled
+//! sample data and the committed reference fixtures.
+
+use std::path::PathBuf;
+use std::process::Command;
+
+/// What one run of the binary gave.
+pub struct Run {
+    /// Exit status (-1 when killed by a signal).
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+}
+
+impl Run {
+    pub fn ok(&self) -> bool {
+        self.code == 0
+    }
+}
+
+/// Run `mullion` with `args` and wait for it.
+pub fn mullion(args: &[&str]) -> Run {
+    let out = Command::new(env!("CARGO_BIN_EXE_mullion"))
+        .args(args)
+        .output()
+        .expect("the mullion binary runs");
+    Run {
+        code: out.status.code().unwrap_or(-1),
+        stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+        stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+    }
+}
+
+/// The repository root.
+pub fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+}
+
+/// The bundled demo folder.
+pub fn sample_data() -> PathBuf {
+    root().join("sample-data")
+}
+
+/// A file of the bundled demo folder.
+pub fn sample(name: &str) -> PathBuf {
+    sample_data().join(name)
+}
+
+/// The committed reference fixtures.
+pub fn fixtures() -> PathBuf {
+    root().join("tests/fixtures")
+}

@@ -1,0 +1,15 @@
+//! The integration suite, one test binary so it links once. Each module drives one part of
+//! Mullion the way a user or a script would; `common` holds what they share.
+
+mod common;
+
+mod architecture;
+mod bad_input;
+mod commands;
+mod demo;
+mod real_window;
+mod reference_outputs;
+mod regions;
+mod render;
+mod window;
+mod worker;
