@@ -1,5 +1,6 @@
 //! What the window remembers between runs: plain data only (eframe storage, `serde(default)`).
 
+use crate::analysis::ScaleSpec;
 use crate::engine::input::{InputPolicy, Normalisation};
 use serde::{Deserialize, Serialize};
 use std::path::PathBuf;
@@ -52,6 +53,28 @@ impl Default for Settings {
 }
 
 impl Settings {
+    /// The map kind's command-line name (`norm`, `channel:N`, `pca`).
+    pub fn map_id(&self) -> String {
+        match self.map_kind.as_str() {
+            "channel" => format!("channel:{}", self.channel),
+            other => other.to_string(),
+        }
+    }
+
+    /// How scalar maps become colours.
+    pub fn scale_spec(&self) -> ScaleSpec {
+        ScaleSpec {
+            shared_across_stages: self.shared_scale,
+            log: self.log_scale,
+            clip_percentiles: (self.clip_low, self.clip_high),
+        }
+    }
+
+    /// Whether going from `self` to `next` needs a new forward pass.
+    pub fn needs_new_run(&self, next: &Settings) -> bool {
+        self.policy != next.policy || self.norm != next.norm
+    }
+
     /// Remember a path at the front of a short most-recent-first list.
     pub fn remember(list: &mut Vec<PathBuf>, path: &std::path::Path) {
         list.retain(|p| p != path);

@@ -3,14 +3,18 @@
 //! The window never runs the model itself: it starts a [`Job`], polls its events each frame and
 //! cancels it when a newer request supersedes it.
 
+use super::input::{apply_policy, normalise, InputPolicy, Normalisation};
 use super::model::{Backbone, ForwardOptions, Progress, RunControl, StageOutputs};
 use crate::error::{Error, Result};
 use candle_core::Tensor;
+use image::RgbImage;
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::mpsc::{channel, Receiver, TryRecvError};
+use std::sync::mpsc::{channel, Receiver, Sender, TryRecvError};
 use std::sync::Arc;
 
 pub enum Event {
+    /// The network input the run uses (sent by [`Job::spawn_image`] before any progress).
+    Prepared(Arc<RgbImage>),
     Progress(Progress),
     Finished(Result<Arc<StageOutputs>>),
 }
@@ -29,6 +33,32 @@ impl Job {
         image: Tensor,
         opts: ForwardOptions,
         wake: Option<Box<dyn Fn() + Send + Sync>>,
+    ) -> Job {
+        Job::spawn_task(model, opts, wake, move |_| Ok(image))
+    }
+
+    /// Like [`Job::spawn`] from a decoded image: the input policy (resize) and the
+    /// normalisation run on the worker thread too, and the input it made is sent first.
+    pub fn spawn_image(
+        model: Arc<Backbone>,
+        image: Arc<RgbImage>,
+        policy: InputPolicy,
+        norm: Normalisation,
+        opts: ForwardOptions,
+        wake: Option<Box<dyn Fn() + Send + Sync>>,
+    ) -> Job {
+        Job::spawn_task(model, opts, wake, move |tx| {
+            let input = Arc::new(apply_policy(&image, policy));
+            let _ = tx.send(Event::Prepared(input.clone()));
+            normalise(&input, &norm)
+        })
+    }
+
+    fn spawn_task(
+        model: Arc<Backbone>,
+        opts: ForwardOptions,
+        wake: Option<Box<dyn Fn() + Send + Sync>>,
+        prepare: impl FnOnce(&Sender<Event>) -> Result<Tensor> + Send + 'static,
     ) -> Job {
         let (tx, rx) = channel();
         let cancel = Arc::new(AtomicBool::new(false));
@@ -51,6 +81,7 @@ impl Job {
                     cancel: Some(&flag),
                 };
                 let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    let image = prepare(&tx)?;
                     model.forward(&image, &opts, &ctl)
                 }))
                 .unwrap_or_else(|_| Err(Error::Internal("the forward pass panicked".into())));
@@ -84,6 +115,7 @@ impl Job {
         loop {
             match self.rx.recv() {
                 Ok(Event::Progress(p)) => on_progress(p),
+                Ok(Event::Prepared(_)) => {}
                 Ok(Event::Finished(r)) => return r,
                 Err(_) => return Err(Error::Internal("the worker thread stopped".into())),
             }

@@ -1,39 +1,55 @@
 //! The window driven headlessly through its accessibility labels (egui_kittest): open an image
-//! and a checkpoint by typed path, wait for the worker, switch the map kind, toggle grids,
-//! change the scale, save the figure, and check state and the saved PNG.
+//! and a checkpoint by typed path, wait for the threads, switch the map kind, toggle grids,
+//! change the scale, draw and annotate regions, save the figure, and check state and the saved
+//! files.
 
+use crate::common::{fixtures, root};
 use egui_kittest::kittest::Queryable;
 use egui_kittest::Harness;
+use mullion::annotation::Shape;
+use mullion::app::actions::{Action, RegionEdit};
+use mullion::app::panels::readout::hover_lines;
+use mullion::app::pictures::THREAD_NAME;
 use mullion::app::settings::Settings;
-use mullion::app::Workbench;
+use mullion::app::Window;
 use mullion::render;
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::time::Duration;
 
-fn root() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).to_path_buf()
-}
-
-fn harness(bench: Workbench) -> Harness<'static, Workbench> {
+fn harness(window: Window) -> Harness<'static, Window> {
     Harness::builder()
         .with_size(egui::vec2(1400.0, 900.0))
-        .build_ui_state(|ui, b: &mut Workbench| b.ui(ui), bench)
+        .build_ui_state(|ui, w: &mut Window| w.ui(ui), window)
 }
 
-fn open_by_path(h: &mut Harness<'_, Workbench>, path: &Path) {
+fn new_window() -> Harness<'static, Window> {
+    let mut h = harness(Window::new(Settings::default()));
+    h.run_steps(2);
+    h
+}
+
+fn open_by_path(h: &mut Harness<'_, Window>, path: &Path) {
     h.get_by_label("Path:").focus();
-    h.state_mut().typed_path = path.display().to_string();
+    h.state_mut().panels.sources.typed_path = path.display().to_string();
     h.run_steps(2);
     h.get_by_label("Open path").click();
     h.run_steps(2);
 }
 
-fn wait(h: &mut Harness<'_, Workbench>) {
-    assert!(
-        h.state_mut().wait_for_result(Duration::from_secs(60)),
-        "the worker did not finish"
-    );
-    h.run_steps(3);
+/// Let every thread finish, then a few frames to show what they made.
+fn wait(h: &mut Harness<'_, Window>) {
+    for _ in 0..3 {
+        assert!(
+            h.state_mut().bench.wait_idle(Duration::from_secs(60)),
+            "the threads did not finish"
+        );
+        h.run_steps(2);
+    }
+}
+
+fn apply(h: &mut Harness<'_, Window>, a: Action) {
+    h.state_mut().bench.apply(a);
+    wait(h);
 }
 
 fn count_colour(img: &image::RgbaImage, c: [u8; 3]) -> usize {
@@ -42,59 +58,95 @@ fn count_colour(img: &image::RgbaImage, c: [u8; 3]) -> usize {
         .count()
 }
 
+fn messages(h: &Harness<'_, Window>) -> Vec<String> {
+    h.state()
+        .bench
+        .messages
+        .iter()
+        .map(|m| m.text.clone())
+        .collect()
+}
+
 #[test]
 fn open_run_switch_toggle_save() {
     let dir = tempfile::tempdir().unwrap();
-    let img_src = root().join("tests/fixtures/timm_odd/input.png");
     let img = dir.path().join("bench-tray.png");
-    std::fs::copy(&img_src, &img).unwrap();
-    let weights = root().join("tests/fixtures/timm_odd/weights.safetensors");
+    std::fs::copy(fixtures().join("timm_odd/input.png"), &img).unwrap();
+    let weights = fixtures().join("timm_odd/weights.safetensors");
 
-    let mut h = harness(Workbench::new(Settings::default()));
-    h.run_steps(2);
+    let mut h = new_window();
     open_by_path(&mut h, &weights);
+    wait(&mut h);
     assert!(h
         .state()
+        .bench
         .weights
         .as_ref()
         .is_some_and(|w| !w.random && w.name == "weights.safetensors"));
     open_by_path(&mut h, &img);
     wait(&mut h);
     {
-        let b = h.state();
+        let b = &h.state().bench;
         let shown = b.shown.as_ref().expect("a result");
         assert_eq!(shown.outputs.geometry.image, (115, 150));
         assert_eq!(shown.outputs.stages.len(), 4);
+        let maps = b.pictures.maps.as_ref().expect("maps");
+        assert_eq!(
+            maps.made_on, THREAD_NAME,
+            "maps are prepared off the GUI thread"
+        );
     }
     // The strip labels each stage.
     assert!(h.query_all_by_label("stage 3").count() >= 1);
 
-    // Map kind: PCA through the combo box.
+    // Map kind: PCA through the combo box, and back.
     h.get_by_label("kind").click();
     h.run_steps(2);
     h.get_by_label("PCA to RGB").click();
-    h.run_steps(3);
-    assert_eq!(h.state().settings.map_kind, "pca");
+    h.run_steps(2);
+    wait(&mut h);
+    assert_eq!(h.state().bench.settings.map_kind, "pca");
+    assert_eq!(
+        h.state().bench.pictures.maps.as_ref().unwrap().map_id,
+        "pca"
+    );
     h.get_by_label("kind").click();
     h.run_steps(2);
     h.get_by_label("token L2 norm").click();
-    h.run_steps(3);
-    assert_eq!(h.state().settings.map_kind, "norm");
+    h.run_steps(2);
+    wait(&mut h);
+    assert_eq!(h.state().bench.settings.map_kind, "norm");
 
-    // Grids and scale.
-    assert!(!h.state().settings.show_shifted);
+    // A grid toggle only redraws: the maps are not prepared again.
+    let before = h.state().bench.pictures.work;
+    assert!(!h.state().bench.settings.show_shifted);
     h.get_by_label("Shifted window grid").click();
     h.run_steps(2);
-    assert!(h.state().settings.show_shifted);
+    wait(&mut h);
+    assert!(h.state().bench.settings.show_shifted);
+    let after = h.state().bench.pictures.work;
+    assert_eq!(after.maps_prepared, before.maps_prepared, "no new maps");
+    assert_eq!(
+        after.pictures_drawn,
+        before.pictures_drawn + 1,
+        "one redraw"
+    );
+    // The log scale changes the maps.
     h.get_by_label("Log scale").click();
     h.run_steps(2);
-    assert!(h.state().settings.log_scale);
+    wait(&mut h);
+    assert!(h.state().bench.settings.log_scale);
+    assert_eq!(
+        h.state().bench.pictures.work.maps_prepared,
+        after.maps_prepared + 1
+    );
 
     // Save: the PNG is the shared renderer's figure, with both grids and a legend.
     h.get_by_label("Save figure").click();
     h.run_steps(2);
+    wait(&mut h);
     let png = dir.path().join("bench-tray.norm.figure.png");
-    assert!(png.exists(), "messages: {:?}", h.state().messages);
+    assert!(png.exists(), "messages: {:?}", messages(&h));
     let fig = image::open(&png).unwrap().to_rgba8();
     assert!(count_colour(&fig, render::SHIFTED_GRID) > 100);
     assert!(count_colour(&fig, render::REGULAR_GRID) > 100);
@@ -109,38 +161,56 @@ fn open_run_switch_toggle_save() {
     // Toggling the shifted grid off removes its colour from the next save.
     h.get_by_label("Shifted window grid").click();
     h.run_steps(2);
+    wait(&mut h);
     h.get_by_label("Save figure").click();
     h.run_steps(2);
+    wait(&mut h);
     let fig = image::open(&png).unwrap().to_rgba8();
     assert_eq!(count_colour(&fig, render::SHIFTED_GRID), 0);
 }
 
 #[test]
 fn a_newer_request_supersedes_and_bad_files_only_message() {
-    let mut h = harness(Workbench::new(Settings::default()));
-    h.run_steps(1);
+    let mut h = new_window();
     // A file that is not a checkpoint: a message, nothing else changes.
-    let not_ckpt = root().join("tests/fixtures/cases.json");
-    h.state_mut().typed_path = not_ckpt.display().to_string();
+    let not_ckpt = fixtures().join("cases.json");
+    h.state_mut().panels.sources.typed_path = not_ckpt.display().to_string();
     h.get_by_label("Open path").click();
     h.run_steps(2);
-    assert!(h.state().weights.is_none());
-    assert!(h
-        .state()
-        .messages
-        .iter()
-        .any(|m| m.text.contains("cases.json")));
+    wait(&mut h);
+    assert!(h.state().bench.weights.is_none());
+    assert!(messages(&h).iter().any(|m| m.contains("cases.json")));
 
     // Two images in a row: the second one wins.
-    h.state_mut().use_random_weights();
-    let a = root().join("tests/fixtures/timm_multiple/input.png");
-    let b = root().join("tests/fixtures/tf4_odd/input.png");
-    h.state_mut().open_paths(&[a]);
-    h.state_mut().open_paths(&[b]);
+    h.state_mut().bench.use_random_weights();
+    let a = fixtures().join("timm_multiple/input.png");
+    let b = fixtures().join("tf4_odd/input.png");
+    h.state_mut().bench.open_paths(&[a]);
+    h.state_mut().bench.open_paths(&[b]);
     wait(&mut h);
     assert_eq!(
-        h.state().shown.as_ref().unwrap().outputs.geometry.image,
+        h.state()
+            .bench
+            .shown
+            .as_ref()
+            .unwrap()
+            .outputs
+            .geometry
+            .image,
         (160, 97)
+    );
+    assert_eq!(
+        h.state()
+            .bench
+            .pictures
+            .maps
+            .as_ref()
+            .unwrap()
+            .outputs
+            .geometry
+            .image,
+        (160, 97),
+        "the maps on screen belong to the image on screen"
     );
 }
 
@@ -150,12 +220,13 @@ fn a_newer_request_supersedes_and_bad_files_only_message() {
 fn draw_name_stats_undo_redo() {
     let dir = tempfile::tempdir().unwrap();
     let img = dir.path().join("tray.png");
-    std::fs::copy(root().join("tests/fixtures/tf4_odd/input.png"), &img).unwrap();
-    let mut h = harness(Workbench::new(Settings::default()));
-    h.run_steps(1);
+    std::fs::copy(fixtures().join("tf4_odd/input.png"), &img).unwrap();
+    let mut h = new_window();
     h.state_mut()
-        .open_paths(&[root().join("tests/fixtures/tf4_odd/weights.safetensors")]);
-    h.state_mut().open_paths(&[img.clone()]);
+        .bench
+        .open_paths(&[fixtures().join("tf4_odd/weights.safetensors")]);
+    wait(&mut h);
+    h.state_mut().bench.open_paths(&[img.clone()]);
     wait(&mut h);
 
     // A label of our own, then the box tool.
@@ -164,18 +235,18 @@ fn draw_name_stats_undo_redo() {
     h.run_steps(2);
     h.get_by_label("Add label").click();
     h.run_steps(2);
-    assert_eq!(h.state().regions.label, "wilted leaf");
+    assert_eq!(h.state().bench.regions.label, "wilted leaf");
     h.get_by_label("Box").click();
     h.run_steps(2);
 
-    // Drag across the middle of the lens.
-    // The lens fills the central area below its title; its picture is centred there.
+    // Drag across the middle of the lens: it fills the central area below its title, with
+    // its picture centred there.
     let title = h.get_by_label_contains("Lens — stage").rect();
     let right = h.get_by_label("Regions").rect().left();
     let cx = (title.left() + right) / 2.0;
     let (a, b) = (
-        egui::pos2(cx - 40.0, title.bottom() + 100.0),
-        egui::pos2(cx + 40.0, title.bottom() + 220.0),
+        egui::pos2(cx - 40.0, title.bottom() + 60.0),
+        egui::pos2(cx + 40.0, title.bottom() + 140.0),
     );
     h.hover_at(a);
     h.run_steps(1);
@@ -187,17 +258,26 @@ fn draw_name_stats_undo_redo() {
     }
     h.drop_at(b);
     h.run_steps(3);
-    let regions = h.state().regions.sidecar.as_ref().unwrap().regions.clone();
-    assert_eq!(regions.len(), 1, "messages: {:?}", h.state().messages);
+    let regions = h
+        .state()
+        .bench
+        .regions
+        .sidecar
+        .as_ref()
+        .unwrap()
+        .regions
+        .clone();
+    assert_eq!(regions.len(), 1, "messages: {:?}", messages(&h));
     assert_eq!(regions[0].label, "wilted leaf");
 
     // Its rows (one per stage) are in the statistics panel.
     h.run_steps(3);
     let row = format!("wilted leaf #{}", regions[0].id);
     assert_eq!(h.query_all_by_label(&row).count(), 3, "one row per stage");
-    assert_eq!(h.state().regions.stats.len(), 3);
+    assert_eq!(h.state().bench.regions.stats.len(), 3);
     assert!(h
         .state()
+        .bench
         .regions
         .stats
         .iter()
@@ -210,14 +290,8 @@ fn draw_name_stats_undo_redo() {
 
     h.get_by_label("Undo").click();
     h.run_steps(3);
-    assert!(h
-        .state()
-        .regions
-        .sidecar
-        .as_ref()
-        .unwrap()
-        .regions
-        .is_empty());
+    let b = &h.state().bench;
+    assert!(b.regions.sidecar.as_ref().unwrap().regions.is_empty());
     assert_eq!(h.query_all_by_label(&row).count(), 0);
     assert!(mullion::annotation::load(&sidecar)
         .unwrap()
@@ -227,15 +301,182 @@ fn draw_name_stats_undo_redo() {
 
     h.get_by_label("Redo").click();
     h.run_steps(3);
-    assert_eq!(h.state().regions.sidecar.as_ref().unwrap().regions.len(), 1);
+    assert_eq!(
+        h.state()
+            .bench
+            .regions
+            .sidecar
+            .as_ref()
+            .unwrap()
+            .regions
+            .len(),
+        1
+    );
     assert_eq!(h.query_all_by_label(&row).count(), 3);
 
     // Reopening the image restores the regions.
-    let mut h2 = harness(Workbench::new(Settings::default()));
-    h2.run_steps(1);
-    h2.state_mut().open_paths(&[img]);
+    let mut h2 = new_window();
+    h2.state_mut().bench.open_paths(&[img]);
+    wait(&mut h2);
     assert_eq!(
-        h2.state().regions.sidecar.as_ref().unwrap().regions.len(),
+        h2.state()
+            .bench
+            .regions
+            .sidecar
+            .as_ref()
+            .unwrap()
+            .regions
+            .len(),
         1
     );
+}
+
+/// A note typed into the selected region's note field is saved as it is typed, survives going
+/// to the next image and back, and the saved figure's caption carries the label key, the note
+/// and the pin, as the report's figures do.
+#[test]
+fn notes_are_saved_and_the_figure_caption_carries_them() {
+    let dir = tempfile::tempdir().unwrap();
+    for name in ["a.png", "b.png"] {
+        std::fs::copy(fixtures().join("tf4_odd/input.png"), dir.path().join(name)).unwrap();
+    }
+    let mut h = new_window();
+    h.state_mut().bench.use_random_weights();
+    h.state_mut().bench.open_paths(&[dir.path().to_path_buf()]);
+    wait(&mut h);
+    apply(
+        &mut h,
+        Action::Region(RegionEdit::DefineLabel("weed".into())),
+    );
+    apply(
+        &mut h,
+        Action::Region(RegionEdit::Add(Shape::Box {
+            x0: 10.0,
+            y0: 20.0,
+            x1: 60.0,
+            y1: 70.0,
+        })),
+    );
+    apply(
+        &mut h,
+        Action::Region(RegionEdit::AddPin {
+            at: [30.0, 40.0],
+            text: "check leaf tip".into(),
+        }),
+    );
+    h.get_by_label("region note").focus();
+    h.get_by_label("region note").type_text("curled edge");
+    h.run_steps(3);
+    let sidecar = dir.path().join("a.png.regions.json");
+    let on_disk = mullion::annotation::load(&sidecar).unwrap().unwrap();
+    assert_eq!(on_disk.regions[0].note, "curled edge", "saved while typing");
+
+    // Away and back: the note is still there.
+    h.get_by_label("Next >").click();
+    h.run_steps(2);
+    wait(&mut h);
+    h.get_by_label("< Previous").click();
+    h.run_steps(2);
+    wait(&mut h);
+    let b = &h.state().bench;
+    assert_eq!(
+        b.regions.sidecar.as_ref().unwrap().regions[0].note,
+        "curled edge"
+    );
+
+    h.get_by_label("Save figure").click();
+    h.run_steps(2);
+    wait(&mut h);
+    let done = h.state().bench.last_export.clone().expect("a saved figure");
+    let caption = done.notes.join("\n");
+    assert!(
+        caption.contains("outlines: 1 labelled regions; weed"),
+        "{caption}"
+    );
+    assert!(caption.contains("curled edge"), "{caption}");
+    assert!(caption.contains("check leaf tip"), "{caption}");
+    assert!(done.png.exists());
+}
+
+/// A channel beyond a stage's width leaves no maps on screen and says why; the read-out
+/// follows the maps on screen, so it cannot index past them; a larger image with the same
+/// setting is no crash.
+#[test]
+fn a_failed_map_clears_the_pictures_and_says_why() {
+    let mut h = new_window();
+    h.state_mut().bench.use_random_weights();
+    h.state_mut()
+        .bench
+        .open_paths(&[fixtures().join("tf4_odd/input.png")]);
+    wait(&mut h);
+    assert!(h.state().bench.pictures.textures.is_some());
+    let mut s = h.state().bench.settings.clone();
+    s.map_kind = "channel".into();
+    s.channel = 4000;
+    apply(&mut h, Action::SetSettings(Box::new(s.clone())));
+    let b = &h.state().bench;
+    assert!(b.pictures.maps.is_none() && b.pictures.textures.is_none());
+    let problem = b.pictures.problem.clone().expect("a reason");
+    assert!(problem.contains("4000"), "{problem}");
+    assert!(
+        h.query_all_by_label_contains("4000").count() >= 1,
+        "said on screen"
+    );
+    assert!(h.query_all_by_label("pointer: no maps on screen").count() == 1);
+
+    // A larger image with the same setting: still no maps, no panic.
+    h.state_mut()
+        .bench
+        .open_paths(&[root().join("sample-data/tray-02-500x375.png")]);
+    wait(&mut h);
+    assert!(h.state().bench.pictures.maps.is_none());
+    s.channel = 3;
+    apply(&mut h, Action::SetSettings(Box::new(s)));
+    let maps = h.state().bench.pictures.maps.clone().expect("maps again");
+    assert_eq!(maps.map_id, "channel:3");
+    // Read-out lines describe the maps on screen, padding included.
+    let lines = hover_lines(&maps, 0, (499.0, 374.0));
+    assert_eq!(lines.len(), 1 + maps.outputs.stages.len());
+    assert!(lines[1].contains("value"), "{lines:?}");
+    let far = hover_lines(&maps, 0, (5000.0, 5000.0));
+    assert!(far[1].contains("outside"), "{far:?}");
+}
+
+/// Cancel leaves nothing of an older result under the new input, says so, and *Run* starts
+/// it again.
+#[test]
+fn cancel_clears_and_run_restarts() {
+    let dir = tempfile::tempdir().unwrap();
+    let big = dir.path().join("big.png");
+    image::RgbImage::from_fn(1600, 1200, |x, y| {
+        image::Rgb([(x % 251) as u8, (y % 241) as u8, ((x * y) % 239) as u8])
+    })
+    .save(&big)
+    .unwrap();
+    let mut h = new_window();
+    h.state_mut().bench.use_random_weights();
+    h.state_mut().bench.open_paths(&[big]);
+    // Wait for the image to load and the run to start, then cancel it.
+    let start = std::time::Instant::now();
+    while !h.state().bench.is_busy() && start.elapsed() < Duration::from_secs(30) {
+        h.state_mut().bench.poll();
+        std::thread::sleep(Duration::from_millis(2));
+    }
+    assert!(h.state().bench.is_busy(), "the run started");
+    h.run_steps(1);
+    h.get_by_label("Cancel").click();
+    h.run_steps(2);
+    wait(&mut h);
+    let b = &h.state().bench;
+    assert!(b.shown.is_none() && b.pictures.maps.is_none());
+    assert!(b.run_problem.as_deref().unwrap_or("").contains("cancelled"));
+    h.get_by_label("Run").click();
+    h.run_steps(2);
+    wait(&mut h);
+    let b = &h.state().bench;
+    assert_eq!(
+        b.shown.as_ref().unwrap().outputs.geometry.image,
+        (1200, 1600)
+    );
+    assert!(b.pictures.textures.is_some());
 }

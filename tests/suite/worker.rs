@@ -56,7 +56,7 @@ fn cancel_stops_between_blocks() {
     let result = loop {
         match job.poll() {
             Some(Event::Finished(r)) => break r,
-            Some(Event::Progress(_)) | None => std::thread::yield_now(),
+            Some(Event::Progress(_) | Event::Prepared(_)) | None => std::thread::yield_now(),
         }
     };
     assert!(matches!(result, Err(Error::Cancelled)));

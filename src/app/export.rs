@@ -1,0 +1,113 @@
+//! *Save figure*: the view on screen as a reviewer's figure (through the same renderer as
+//! `mullion figure` and the report), with the regions outlined, their label key, notes and pins
+//! in the caption, and the per-stage statistics beside it. Runs on its own thread.
+
+use super::pictures::{DrawKey, PreparedMaps};
+use super::region_doc::scale_sidecar;
+use crate::analysis::{stage_stats, write_stats_csv, write_stats_json};
+use crate::annotation::Sidecar;
+use crate::error::Result;
+use crate::render::{self, FigureSpec};
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+/// Everything a save needs, copied out of the window's state.
+pub struct ExportRequest {
+    pub maps: Arc<PreparedMaps>,
+    pub draw: DrawKey,
+    pub sidecar: Option<Sidecar>,
+    /// How the image became the network input, for the caption.
+    pub policy: String,
+    pub checkpoint: String,
+    pub paths: ExportPaths,
+}
+
+/// The files one save writes.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ExportPaths {
+    pub png: PathBuf,
+    pub stats_json: PathBuf,
+    pub stats_csv: PathBuf,
+}
+
+impl ExportPaths {
+    /// `<stem>.<map>.figure.png` and the statistics beside it, in `dir`.
+    pub fn new(dir: &Path, image: &Path, map_id: &str) -> ExportPaths {
+        let stem = image
+            .file_stem()
+            .map_or_else(|| "image".into(), |s| s.to_string_lossy().into_owned());
+        let id = map_id.replace(':', "-");
+        ExportPaths {
+            png: dir.join(format!("{stem}.{id}.figure.png")),
+            stats_json: dir.join(format!("{stem}.{id}.stats.json")),
+            stats_csv: dir.join(format!("{stem}.{id}.stats.csv")),
+        }
+    }
+}
+
+/// What a save wrote, with the caption lines it carried.
+#[derive(Clone, Debug)]
+pub struct Exported {
+    pub png: PathBuf,
+    pub notes: Vec<String>,
+    /// Whether statistics were written (scalar maps only).
+    pub stats: bool,
+}
+
+/// Compose and write the figure and the statistics.
+pub fn export(req: &ExportRequest) -> Result<Exported> {
+    let maps = &req.maps;
+    let input = maps.input.as_ref();
+    let scale = render::default_figure_scale(input.height());
+    let mut notes = vec![format!("input policy: {}", req.policy)];
+    let scalar = maps.raw.iter().all(|m| m.scalars().is_some());
+    notes.push(if scalar {
+        render::scale_note(&maps.key.spec, req.draw.colormap)
+    } else {
+        render::PCA_NOTE.to_string()
+    });
+    // Regions are marked in image pixels; with a resizing input policy they are scaled along.
+    let annotated = match &req.sidecar {
+        Some(sc) => {
+            let (sx, sy) = maps.image_to_input();
+            let (img, region_notes) = render::annotate_regions(input, &scale_sidecar(sc, sx, sy));
+            notes.extend(region_notes);
+            img
+        }
+        None => input.clone(),
+    };
+    let stats = if scalar {
+        Some(stage_stats(
+            &maps.map_id,
+            &maps.raw,
+            &maps.outputs.geometry,
+        )?)
+    } else {
+        None
+    };
+    let fig = render::compose_figure(&FigureSpec {
+        image: &annotated,
+        geometry: &maps.outputs.geometry,
+        stages: &maps.stages,
+        style: render::figure_panel_style(
+            req.draw.colormap,
+            req.draw.opacity,
+            req.draw.overlays,
+            scale,
+        ),
+        checkpoint: req.checkpoint.clone(),
+        map_label: maps.map_label.clone(),
+        notes: notes.clone(),
+        text_px: render::figure_text_px(scale),
+    })?;
+    crate::io::save_png_atomic(&fig, &req.paths.png)?;
+    if let Some(stats) = &stats {
+        write_stats_json(stats, &req.paths.stats_json)?;
+        write_stats_csv(stats, &req.paths.stats_csv)?;
+    }
+    Ok(Exported {
+        png: req.paths.png.clone(),
+        notes,
+        stats: stats.is_some(),
+    })
+}

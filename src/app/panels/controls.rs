@@ -1,0 +1,212 @@
+//! The controls on the left: how the image becomes the network input, which map and how it is
+//! coloured, which windows are drawn, and the lens. Widgets edit a copy of the settings; a
+//! changed copy goes back as one action, and the state decides whether that needs a new
+//! forward pass, new maps or only new pictures.
+
+use crate::app::actions::Action;
+use crate::app::settings::Settings;
+use crate::app::state::Workbench;
+use crate::engine::input::{InputPolicy, Normalisation};
+
+#[derive(Default)]
+pub struct Controls;
+
+impl Controls {
+    pub fn ui(&mut self, ui: &mut egui::Ui, bench: &Workbench) -> Vec<Action> {
+        let mut next = bench.settings.clone();
+        egui::Panel::left("controls")
+            .resizable(true)
+            .default_size(250.0)
+            .show(ui, |ui| {
+                egui::ScrollArea::vertical().show(ui, |ui| controls(bench, &mut next, ui));
+            });
+        if next != bench.settings {
+            vec![Action::SetSettings(Box::new(next))]
+        } else {
+            Vec::new()
+        }
+    }
+}
+
+fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
+    let n_stages = bench.n_stages();
+    ui.heading("Input");
+    let mut kind = match s.policy {
+        InputPolicy::Native => 0,
+        InputPolicy::FitLongSide(_) => 1,
+        InputPolicy::Square(_) => 2,
+    };
+    let mut size = match s.policy {
+        InputPolicy::Native => 224,
+        InputPolicy::FitLongSide(n) | InputPolicy::Square(n) => n,
+    };
+    ui.radio_value(&mut kind, 0, "Native size");
+    ui.radio_value(&mut kind, 1, "Fit long side");
+    ui.radio_value(&mut kind, 2, "Fixed square");
+    if kind != 0 {
+        ui.horizontal(|ui| {
+            labelled_drag(
+                ui,
+                "size",
+                egui::DragValue::new(&mut size)
+                    .range(16..=4096)
+                    .suffix(" px"),
+            );
+        });
+    }
+    s.policy = match kind {
+        0 => InputPolicy::Native,
+        1 => InputPolicy::FitLongSide(size),
+        _ => InputPolicy::Square(size),
+    };
+    ui.label("Normalisation mean / std");
+    ui.horizontal(|ui| {
+        if ui.small_button("ImageNet").clicked() {
+            s.norm = Normalisation::IMAGENET;
+        }
+        if ui.small_button("0.5 / 0.5").clicked() {
+            s.norm = Normalisation::HALF;
+        }
+    });
+    for c in 0..3 {
+        ui.horizontal(|ui| {
+            let name = ["R", "G", "B"][c];
+            let mean = egui::DragValue::new(&mut s.norm.mean[c])
+                .speed(0.005)
+                .range(-10.0..=10.0)
+                .max_decimals(3);
+            labelled_drag(ui, &format!("{name} mean"), mean);
+            let std = egui::DragValue::new(&mut s.norm.std[c])
+                .speed(0.005)
+                .range(0.001..=10.0)
+                .max_decimals(3);
+            labelled_drag(ui, "std", std);
+        });
+    }
+    if let Some(shown) = &bench.shown {
+        let g = &shown.outputs.geometry;
+        ui.label(format!("network input {}x{} px", g.image.1, g.image.0));
+        ui.label(format!(
+            "patch padding +{} right, +{} bottom",
+            g.input_pad().1,
+            g.input_pad().0
+        ));
+        for st in &g.stages {
+            let (pr, pc) = st.padded();
+            ui.small(format!(
+                "stage {}: {}x{} tokens, padded to {}x{}",
+                st.index, st.grid.1, st.grid.0, pc, pr
+            ));
+        }
+    }
+
+    ui.separator();
+    ui.heading("Map");
+    egui::ComboBox::from_label("kind")
+        .selected_text(match s.map_kind.as_str() {
+            "channel" => "one channel",
+            "pca" => "PCA to RGB",
+            _ => "token L2 norm",
+        })
+        .show_ui(ui, |ui| {
+            ui.selectable_value(&mut s.map_kind, "norm".to_string(), "token L2 norm");
+            ui.selectable_value(&mut s.map_kind, "channel".to_string(), "one channel");
+            ui.selectable_value(&mut s.map_kind, "pca".to_string(), "PCA to RGB");
+        });
+    if s.map_kind == "channel" {
+        ui.horizontal(|ui| {
+            labelled_drag(
+                ui,
+                "channel",
+                egui::DragValue::new(&mut s.channel).range(0..=4095),
+            );
+        });
+        if let Some(maps) = bench.pictures.maps.as_deref() {
+            let stage = s.focus_stage.min(maps.ranking.len().saturating_sub(1));
+            if let Some(ranked) = maps.ranking.get(stage) {
+                ui.small(format!("strongest in stage {stage} (by mean):"));
+                ui.horizontal_wrapped(|ui| {
+                    for (ch, mean) in ranked {
+                        if ui.small_button(format!("{ch} ({mean:.2})")).clicked() {
+                            s.channel = *ch;
+                        }
+                    }
+                });
+            }
+            if let Some(w) = maps.outputs.stages.get(stage).and_then(|t| t.dim(2).ok()) {
+                ui.small(format!(
+                    "stage {stage} has channels 0 to {}",
+                    w.saturating_sub(1)
+                ));
+            }
+        }
+    }
+    egui::ComboBox::from_label("colours")
+        .selected_text(s.colormap.clone())
+        .show_ui(ui, |ui| {
+            for c in ["viridis", "magma", "cividis"] {
+                ui.selectable_value(&mut s.colormap, c.to_string(), c);
+            }
+        });
+    ui.checkbox(&mut s.shared_scale, "One scale for all stages");
+    ui.checkbox(&mut s.log_scale, "Log scale");
+    ui.horizontal(|ui| {
+        labelled_drag(
+            ui,
+            "clip low %",
+            egui::DragValue::new(&mut s.clip_low)
+                .range(0.0..=49.0)
+                .speed(0.1),
+        );
+        labelled_drag(
+            ui,
+            "high %",
+            egui::DragValue::new(&mut s.clip_high)
+                .range(51.0..=100.0)
+                .speed(0.1),
+        );
+    });
+
+    ui.separator();
+    ui.heading("Windows");
+    ui.checkbox(&mut s.show_regular, "Regular window grid");
+    ui.checkbox(&mut s.show_shifted, "Shifted window grid");
+    ui.checkbox(&mut s.show_padding, "Hatch padding");
+    let max_pair = bench.weights.as_ref().map_or(0, |w| {
+        w.model
+            .config
+            .depths
+            .iter()
+            .max()
+            .copied()
+            .unwrap_or(2)
+            .saturating_sub(1)
+            / 2
+    });
+    ui.horizontal(|ui| {
+        labelled_drag(
+            ui,
+            "block pair",
+            egui::DragValue::new(&mut s.block_pair).range(0..=max_pair),
+        );
+    });
+    ui.small("pair k draws block 2k (regular) and 2k+1 (shifted)");
+
+    ui.separator();
+    ui.heading("Lens");
+    ui.horizontal(|ui| {
+        let last = n_stages.saturating_sub(1);
+        labelled_drag(
+            ui,
+            "lens stage",
+            egui::DragValue::new(&mut s.focus_stage).range(0..=last),
+        );
+    });
+    ui.add(egui::Slider::new(&mut s.opacity, 0.0..=1.0).text("map opacity"));
+}
+
+/// A number field with a visible name that assistive tools (and the tests) find it by.
+fn labelled_drag(ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>) -> egui::Response {
+    let label = ui.label(name);
+    ui.add(value).labelled_by(label.id)
+}

@@ -1,0 +1,118 @@
+//! The lens: one stage large over the image, with zoom (scroll) and pan (drag), the region
+//! tools, the tokens inside the selected region lit, and the linked crosshair. It takes the
+//! space left below the strip.
+
+use super::pointer::{crosshair, to_input_px, Pointer};
+use crate::app::actions::Action;
+use crate::app::canvas::{CanvasTools, Placement, Tool};
+use crate::app::state::Workbench;
+use crate::render;
+use egui::{Color32, Pos2, Rect, Sense, Vec2};
+
+/// When set, the window writes this file once the first stage maps are on screen, so an
+/// outside check (the real-window smoke test) knows when to take its screenshot.
+pub const READY_FILE_ENV: &str = "MULLION_READY_FILE";
+
+pub struct Lens {
+    pub zoom: f32,
+    pub pan: Vec2,
+    announced: bool,
+}
+
+impl Default for Lens {
+    fn default() -> Self {
+        Lens {
+            zoom: 1.0,
+            pan: Vec2::ZERO,
+            announced: false,
+        }
+    }
+}
+
+impl Lens {
+    /// Back to the whole stage in view.
+    pub fn fit(&mut self) {
+        self.zoom = 1.0;
+        self.pan = Vec2::ZERO;
+    }
+
+    pub fn ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        bench: &Workbench,
+        canvas: &mut CanvasTools,
+        pointer: &mut Pointer,
+    ) -> Vec<Action> {
+        let mut out = Vec::new();
+        let (Some(maps), Some(tex)) = (bench.pictures.maps.as_deref(), &bench.pictures.textures)
+        else {
+            return out;
+        };
+        let (Some(lens_tex), Some(sg)) = (
+            tex.lens.as_ref(),
+            maps.outputs.geometry.stages.get(tex.key.focus),
+        ) else {
+            return out;
+        };
+        // The title names the stage the picture shows, not the one just asked for.
+        ui.horizontal(|ui| {
+            ui.label(egui::RichText::new(format!("Lens — stage {}", tex.key.focus)).strong());
+            if ui.small_button("Fit").clicked() {
+                self.fit();
+            }
+            if bench.pictures.is_busy() {
+                ui.small("updating…");
+            }
+        });
+        let area = ui.available_rect_before_wrap();
+        let resp = ui.allocate_rect(area, Sense::click_and_drag());
+        let (h, w) = render::canvas_size(sg);
+        let canvas_px = (w as f32, h as f32);
+        if resp.hovered() {
+            let scroll = ui.input(|i| i.smooth_scroll_delta.y);
+            if scroll != 0.0 {
+                self.zoom = (self.zoom * (1.0 + scroll * 0.002)).clamp(0.2, 40.0);
+            }
+        }
+        let fit = (area.width() / canvas_px.0).min(area.height() / canvas_px.1);
+        let size = Vec2::new(canvas_px.0, canvas_px.1) * fit * self.zoom;
+        let rect = Rect::from_center_size(area.center() + self.pan, size);
+        let (sx, sy) = maps.image_to_input();
+        let at = Placement {
+            rect,
+            canvas: canvas_px,
+            to_image: (1.0 / sx, 1.0 / sy),
+        };
+        // Drawing tools take the drag; picking drags a region, or pans where there is none.
+        out.extend(canvas.interact(&resp, &at, &bench.regions));
+        if resp.dragged() && canvas.tool == Tool::Pick && !canvas.is_grabbing() {
+            self.pan += resp.drag_delta();
+        }
+        let painter = ui.painter_at(area);
+        painter.image(
+            lens_tex.id(),
+            rect,
+            Rect::from_min_max(Pos2::ZERO, Pos2::new(1.0, 1.0)),
+            Color32::WHITE,
+        );
+        canvas.paint(
+            &painter,
+            &at,
+            &bench.regions,
+            Some(&bench.regions.highlight),
+        );
+        if let Some(p) = resp.hover_pos() {
+            pointer.set(to_input_px(rect, canvas_px, p));
+        }
+        crosshair(&painter, rect, area, canvas_px, pointer.hover);
+        if !self.announced {
+            self.announced = true;
+            if let Some(path) = std::env::var_os(READY_FILE_ENV) {
+                // Announce after this frame is on screen.
+                ui.ctx().request_repaint();
+                let _ = std::fs::write(path, b"maps drawn\n");
+            }
+        }
+        out
+    }
+}

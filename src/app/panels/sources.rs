@@ -1,0 +1,155 @@
+//! The bar along the top: open images, folders and checkpoints (dialogs, recent files, a typed
+//! path), move through the image list, the checkpoint in use, save, help, and the progress of
+//! the running forward pass with its cancel button.
+
+use crate::app::actions::{Action, Pick};
+use crate::app::state::Workbench;
+use egui::Color32;
+use std::path::PathBuf;
+
+#[derive(Default)]
+pub struct SourceBar {
+    /// The path field.
+    pub typed_path: String,
+}
+
+impl SourceBar {
+    pub fn ui(&mut self, ui: &mut egui::Ui, bench: &Workbench) -> Vec<Action> {
+        let mut out = Vec::new();
+        egui::Panel::top("sources").show(ui, |ui| {
+            ui.horizontal_wrapped(|ui| {
+                self.open_buttons(ui, bench, &mut out);
+                ui.separator();
+                let n = bench.images.len();
+                if ui
+                    .add_enabled(n > 1, egui::Button::new("< Previous"))
+                    .clicked()
+                {
+                    out.push(Action::PreviousImage);
+                }
+                if ui.add_enabled(n > 1, egui::Button::new("Next >")).clicked() {
+                    out.push(Action::NextImage);
+                }
+                if let Some(p) = bench.images.get(bench.current) {
+                    let name = crate::io::file_name(p);
+                    ui.label(format!("{name}  ({}/{n})", bench.current + 1));
+                }
+                ui.separator();
+                match &bench.weights {
+                    Some(w) if w.random => {
+                        ui.colored_label(
+                            Color32::from_rgb(220, 80, 40),
+                            "RANDOM WEIGHTS: no learned structure",
+                        );
+                    }
+                    Some(w) => {
+                        ui.label(format!("checkpoint: {}", w.name));
+                    }
+                    None => {
+                        ui.label("no checkpoint");
+                    }
+                }
+                let has_report = bench.weights.as_ref().is_some_and(|w| w.report.is_some());
+                if ui
+                    .add_enabled(has_report, egui::Button::new("Load report"))
+                    .clicked()
+                {
+                    out.push(Action::ShowLoadReport(true));
+                }
+                ui.separator();
+                let can_save = bench.pictures.textures.is_some();
+                if ui
+                    .add_enabled(can_save, egui::Button::new("Save figure"))
+                    .clicked()
+                {
+                    out.push(Action::SaveFigure);
+                }
+                if ui.button("Help (F1)").clicked() {
+                    out.push(Action::ToggleHelp);
+                }
+            });
+            status_line(ui, bench, &mut out);
+        });
+        out
+    }
+
+    fn open_buttons(&mut self, ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
+        if ui.button("Open images…").clicked() {
+            out.push(Action::Pick(Pick::Images));
+        }
+        if ui.button("Open folder…").clicked() {
+            out.push(Action::Pick(Pick::Folder));
+        }
+        if ui.button("Open checkpoint…").clicked() {
+            out.push(Action::Pick(Pick::Weights));
+        }
+        ui.menu_button("Recent", |ui| {
+            let lists = [
+                ("images", &bench.settings.recent_images),
+                ("checkpoints", &bench.settings.recent_weights),
+            ];
+            for (what, list) in lists {
+                ui.label(what);
+                if list.is_empty() {
+                    ui.small("none yet");
+                }
+                for p in list.iter() {
+                    if ui.button(p.display().to_string()).clicked() {
+                        out.push(Action::OpenPaths(vec![PathBuf::from(p)]));
+                        ui.close();
+                    }
+                }
+            }
+        });
+        ui.separator();
+        let label = ui.label("Path:");
+        let field = ui
+            .add(
+                egui::TextEdit::singleline(&mut self.typed_path)
+                    .hint_text("image, folder or checkpoint")
+                    .desired_width(260.0),
+            )
+            .labelled_by(label.id);
+        let enter = field.lost_focus() && ui.input(|i| i.key_pressed(egui::Key::Enter));
+        if ui.button("Open path").clicked() || enter {
+            out.push(Action::OpenTyped(self.typed_path.clone()));
+        }
+    }
+}
+
+/// What is loading or running, with a cancel button, or why nothing is shown.
+fn status_line(ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
+    let loading: Vec<String> = [&bench.loader.loading_weights, &bench.loader.loading_image]
+        .into_iter()
+        .flatten()
+        .map(|p| format!("loading {}…", crate::io::file_name(p)))
+        .collect();
+    if !loading.is_empty() {
+        ui.horizontal(|ui| {
+            ui.spinner();
+            ui.label(loading.join("  "));
+        });
+    }
+    if bench.is_busy() {
+        ui.horizontal(|ui| {
+            let (frac, text) = match bench.progress() {
+                Some(p) => (
+                    p.done as f32 / p.total.max(1) as f32,
+                    format!("stage {} — block {}/{}", p.stage, p.done, p.total),
+                ),
+                None => (0.0, "preparing the input…".into()),
+            };
+            ui.add(egui::ProgressBar::new(frac).text(text).desired_width(360.0));
+            if ui.button("Cancel").clicked() {
+                out.push(Action::CancelRun);
+            }
+        });
+    } else if let Some(problem) = &bench.run_problem {
+        ui.horizontal(|ui| {
+            ui.colored_label(Color32::from_rgb(230, 90, 70), problem);
+            if ui.button("Run").clicked() {
+                out.push(Action::Rerun);
+            }
+        });
+    }
+}

@@ -1,0 +1,140 @@
+//! The stage strip: the image, then one panel per stage side by side with its legend, reflowing
+//! on narrow windows. Clicking a stage puts it in the lens; the region tools work here too.
+
+use super::pointer::{crosshair, to_input_px, Pointer};
+use crate::analysis::PreparedStage;
+use crate::app::actions::Action;
+use crate::app::canvas::{CanvasTools, Placement, Tool};
+use crate::app::state::Workbench;
+use crate::render;
+use egui::{Sense, Vec2};
+
+#[derive(Default)]
+pub struct StageStrip;
+
+/// What the central area says when there are no pictures to show.
+pub fn empty_reason(bench: &Workbench) -> String {
+    if let Some(p) = &bench.pictures.problem {
+        return p.clone();
+    }
+    if let Some(p) = &bench.run_problem {
+        return p.clone();
+    }
+    if let Some(p) = &bench.loader.loading_image {
+        return format!("loading {}…", crate::io::file_name(p));
+    }
+    if bench.is_busy() {
+        return "running the backbone…".into();
+    }
+    if bench.shown.is_some() {
+        return "preparing the maps…".into();
+    }
+    "Open an image (or a folder) and a checkpoint — or drop them here.".into()
+}
+
+fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>) {
+    let Some(st) = st else { return };
+    match (&st.range, &st.explained) {
+        (Some(r), _) => {
+            ui.small(format!(
+                "{:.3} … {:.3}{}",
+                r.lo,
+                r.hi,
+                if r.log { " (log)" } else { "" }
+            ));
+        }
+        (None, Some(e)) => {
+            let pct: Vec<String> = e.iter().map(|v| format!("{:.0}%", v * 100.0)).collect();
+            ui.small(format!("RGB = PC1..3 ({})", pct.join(", ")));
+        }
+        _ => {}
+    }
+}
+
+impl StageStrip {
+    pub fn ui(
+        &mut self,
+        ui: &mut egui::Ui,
+        bench: &Workbench,
+        canvas: &mut CanvasTools,
+        pointer: &mut Pointer,
+    ) -> Vec<Action> {
+        let mut out = Vec::new();
+        let (Some(maps), Some(tex)) = (bench.pictures.maps.as_deref(), &bench.pictures.textures)
+        else {
+            ui.centered_and_justified(|ui| {
+                ui.label(empty_reason(bench));
+            });
+            return out;
+        };
+        let g = &maps.outputs.geometry;
+        let (sx, sy) = maps.image_to_input();
+        let to_image = (1.0 / sx, 1.0 / sy);
+        ui.label(egui::RichText::new(format!("Stage strip — {}", maps.map_label)).strong());
+        let n = tex.strip.len() + 1;
+        let avail = ui.available_width();
+        let per_row = ((avail / 190.0).floor() as usize).clamp(1, n);
+        let cell_w = (avail / per_row as f32 - 8.0).max(80.0);
+        let canvases: Vec<(f32, f32)> = std::iter::once((g.image.1 as f32, g.image.0 as f32))
+            .chain(g.stages.iter().map(|s| {
+                let (h, w) = render::canvas_size(s);
+                (w as f32, h as f32)
+            }))
+            .collect();
+        let max_h = canvases
+            .iter()
+            .map(|c| c.1 / c.0 * cell_w)
+            .fold(0.0, f32::max)
+            .min(240.0);
+        egui::Grid::new("strip").spacing([8.0, 4.0]).show(ui, |ui| {
+            for (idx, &canvas_px) in canvases.iter().enumerate().take(n) {
+                let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
+                let size = Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale);
+                ui.vertical(|ui| {
+                    let title = if idx == 0 {
+                        "image".to_string()
+                    } else {
+                        format!("stage {}", idx - 1)
+                    };
+                    ui.small(title.clone());
+                    let texture = if idx == 0 {
+                        Some(&tex.image)
+                    } else {
+                        tex.strip.get(idx - 1)
+                    };
+                    if let Some(t) = texture {
+                        let resp = ui
+                            .add(egui::Image::new((t.id(), size)).sense(Sense::click_and_drag()))
+                            .on_hover_text_at_pointer(title.clone());
+                        if let Some(p) = resp.hover_pos() {
+                            pointer.set(to_input_px(resp.rect, canvas_px, p));
+                        }
+                        if resp.clicked() && idx > 0 && canvas.tool == Tool::Pick {
+                            out.push(Action::FocusStage(idx - 1));
+                        }
+                        let at = Placement {
+                            rect: resp.rect,
+                            canvas: canvas_px,
+                            to_image,
+                        };
+                        out.extend(canvas.interact(&resp, &at, &bench.regions));
+                        let painter = ui.painter_at(resp.rect);
+                        canvas.paint(&painter, &at, &bench.regions, None);
+                        crosshair(&painter, resp.rect, resp.rect, canvas_px, pointer.hover);
+                    }
+                    if idx > 0 {
+                        if let Some(t) = tex.legends.get(idx - 1) {
+                            let w = size.x.min(240.0);
+                            ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
+                        }
+                        legend_text(ui, maps.stages.get(idx - 1));
+                    }
+                });
+                if (idx + 1) % per_row == 0 {
+                    ui.end_row();
+                }
+            }
+        });
+        out
+    }
+}

@@ -1,0 +1,446 @@
+//! The maps and panel pictures on screen, made off the GUI thread.
+//!
+//! Two keys decide what work a change needs: a [`MapKey`] (which result, which map kind, which
+//! scaling) changes the maps themselves (PCA refits, percentiles), a [`DrawKey`] (colour map,
+//! grids, opacity, lens stage) only the pictures drawn from them. A job on its own thread does
+//! whichever is needed and sends the result back; the GUI thread only uploads textures. When the
+//! maps key changes the old pictures are dropped at once, so an old map is never shown under a
+//! new caption; when only the drawing changes the old pictures stay until the new ones arrive.
+
+use super::settings::Settings;
+use crate::analysis::{
+    parse_map_kind, prepare_stages, rank_channels, Colormap, Map, PreparedStage, ScaleSpec,
+};
+use crate::engine::StageOutputs;
+use crate::error::{Error, Result};
+use crate::render::{self, line_width_for_scale, Overlays, PanelStyle};
+use egui::{TextureHandle, TextureOptions};
+use image::{RgbImage, RgbaImage};
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::mpsc::{channel, Receiver, TryRecvError};
+use std::sync::Arc;
+
+/// How many channels the controls offer as the strongest of a stage.
+pub const RANKED_CHANNELS: usize = 8;
+
+/// The name of the thread that prepares maps and draws panels.
+pub const THREAD_NAME: &str = "mullion-pictures";
+
+/// What the maps depend on.
+#[derive(Clone, Debug, PartialEq)]
+pub struct MapKey {
+    /// The result (image, checkpoint, input policy, normalisation).
+    pub run: String,
+    /// The map kind's id (`norm`, `channel:4`, `pca`).
+    pub map: String,
+    pub spec: ScaleSpec,
+}
+
+/// What the pictures drawn from the maps depend on, beyond the maps.
+#[derive(Clone, Debug, PartialEq)]
+pub struct DrawKey {
+    pub colormap: Colormap,
+    pub opacity: f32,
+    pub overlays: Overlays,
+    /// The stage drawn large in the lens.
+    pub focus: usize,
+}
+
+impl MapKey {
+    pub fn of(run: &str, s: &Settings) -> MapKey {
+        MapKey {
+            run: run.to_string(),
+            map: s.map_id(),
+            spec: s.scale_spec(),
+        }
+    }
+}
+
+impl DrawKey {
+    pub fn of(s: &Settings, n_stages: usize) -> DrawKey {
+        DrawKey {
+            colormap: Colormap::parse(&s.colormap).unwrap_or_default(),
+            opacity: s.opacity.clamp(0.0, 1.0),
+            overlays: Overlays {
+                regular_grid: s.show_regular,
+                shifted_grid: s.show_shifted,
+                padding: s.show_padding,
+                block: 2 * s.block_pair,
+                grid_in_padding: true,
+                line_width: 1,
+            },
+            focus: s.focus_stage.min(n_stages.saturating_sub(1)),
+        }
+    }
+
+    /// The panel style at `scale` output pixels per input pixel.
+    pub fn style(&self, scale: f32) -> PanelStyle {
+        PanelStyle {
+            colormap: self.colormap,
+            opacity: self.opacity,
+            overlays: Overlays {
+                line_width: line_width_for_scale(scale),
+                ..self.overlays
+            },
+            scale,
+        }
+    }
+}
+
+/// Every stage's map of one result, raw and ready to draw.
+pub struct PreparedMaps {
+    /// Unique per preparation, so derived numbers (region statistics) know when to recompute.
+    pub id: u64,
+    pub key: MapKey,
+    pub outputs: Arc<StageOutputs>,
+    /// The network input the maps belong to.
+    pub input: Arc<RgbImage>,
+    /// Size of the image as opened (before any input policy), width x height.
+    pub image_size: (u32, u32),
+    /// Raw values per stage (for the read-out and statistics).
+    pub raw: Vec<Map>,
+    /// Scaled for display, with legend ranges or PCA variance shares.
+    pub stages: Vec<PreparedStage>,
+    pub map_id: String,
+    pub map_label: String,
+    /// Per stage, the channels with the largest mean, largest first.
+    pub ranking: Vec<Vec<(usize, f32)>>,
+    /// The thread the preparation ran on (the GUI thread never prepares maps).
+    pub made_on: String,
+}
+
+impl PreparedMaps {
+    /// Factors from image pixels (where regions are marked) to network-input pixels.
+    pub fn image_to_input(&self) -> (f64, f64) {
+        let (w, h) = self.image_size;
+        (
+            self.input.width() as f64 / w.max(1) as f64,
+            self.input.height() as f64 / h.max(1) as f64,
+        )
+    }
+
+    /// The raw value (scalar) or colour of token (row, col) of `stage`, if it is a real token.
+    pub fn value_at(&self, stage: usize, row: usize, col: usize) -> Option<String> {
+        let map = self.raw.get(stage)?;
+        let (rows, cols) = map.dims();
+        if row >= rows || col >= cols {
+            return None;
+        }
+        let i = row * cols + col;
+        Some(match map {
+            Map::Scalar { values, .. } => format!("value {:.4}", values.get(i)?),
+            Map::Rgb { values, .. } => {
+                let v = values.get(i)?;
+                format!("rgb {:.2} {:.2} {:.2}", v[0], v[1], v[2])
+            }
+        })
+    }
+}
+
+/// The pictures of one draw, as pixels (made on the job thread).
+pub struct Drawn {
+    pub key: DrawKey,
+    pub image: RgbaImage,
+    pub strip: Vec<RgbaImage>,
+    pub lens: Option<RgbaImage>,
+    pub lens_scale: f32,
+    pub legends: Vec<RgbaImage>,
+}
+
+/// The pictures of one draw, as textures.
+pub struct Textures {
+    pub key: DrawKey,
+    pub image: TextureHandle,
+    pub strip: Vec<TextureHandle>,
+    pub lens: Option<TextureHandle>,
+    pub legends: Vec<TextureHandle>,
+}
+
+/// How often each kind of work ran (for the tests that check what a change costs).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct WorkCount {
+    pub maps_prepared: u64,
+    pub pictures_drawn: u64,
+}
+
+type JobResult = Result<(Arc<PreparedMaps>, Drawn)>;
+
+struct Job {
+    map_key: MapKey,
+    draw_key: DrawKey,
+    rx: Receiver<JobResult>,
+}
+
+#[derive(Default)]
+pub struct Pictures {
+    /// The maps on screen (or about to be: their textures may still be uploading).
+    pub maps: Option<Arc<PreparedMaps>>,
+    pub textures: Option<Textures>,
+    /// Why there are no maps, when preparing them failed.
+    pub problem: Option<String>,
+    pub work: WorkCount,
+    job: Option<Job>,
+    upload: Option<Drawn>,
+    /// The maps key whose preparation failed last (not retried until something changes).
+    failed: Option<MapKey>,
+}
+
+/// The lens's output pixels per input pixel: whole steps, so the lens picture stays sharp.
+pub fn lens_scale(input: &RgbImage) -> f32 {
+    (768.0 / input.width().max(input.height()).max(1) as f32)
+        .clamp(1.0, 4.0)
+        .floor()
+}
+
+fn next_id() -> u64 {
+    static NEXT: AtomicU64 = AtomicU64::new(1);
+    NEXT.fetch_add(1, Ordering::Relaxed)
+}
+
+/// Prepare (unless `reuse` already has them) and draw, on the job thread.
+fn work(
+    outputs: Arc<StageOutputs>,
+    input: Arc<RgbImage>,
+    image_size: (u32, u32),
+    map_key: MapKey,
+    draw_key: DrawKey,
+    reuse: Option<Arc<PreparedMaps>>,
+) -> JobResult {
+    let maps = match reuse {
+        Some(m) => m,
+        None => {
+            map_key.spec.validate()?;
+            let kind = parse_map_kind(&map_key.map)?;
+            let (raw, stages) = prepare_stages(&outputs, kind.as_ref(), &map_key.spec)?;
+            let ranking = (0..outputs.stages.len())
+                .map(|s| {
+                    rank_channels(&outputs, s)
+                        .map(|r| r.into_iter().take(RANKED_CHANNELS).collect())
+                })
+                .collect::<Result<_>>()?;
+            Arc::new(PreparedMaps {
+                id: next_id(),
+                key: map_key,
+                outputs: outputs.clone(),
+                input: input.clone(),
+                image_size,
+                raw,
+                stages,
+                map_id: kind.id(),
+                map_label: kind.label(),
+                ranking,
+                made_on: std::thread::current().name().unwrap_or("").to_string(),
+            })
+        }
+    };
+    let g = &outputs.geometry;
+    let strip_style = draw_key.style(1.0);
+    let strip = maps
+        .stages
+        .iter()
+        .map(|st| render::render_panel(&input, &st.map, g, st.stage, &strip_style))
+        .collect::<Result<Vec<_>>>()?;
+    let scale = lens_scale(&input);
+    let lens = maps
+        .stages
+        .get(draw_key.focus)
+        .map(|st| render::render_panel(&input, &st.map, g, st.stage, &draw_key.style(scale)))
+        .transpose()?;
+    let legends = maps
+        .stages
+        .iter()
+        .map(|st| match &st.range {
+            Some(r) => render::render_legend(draw_key.colormap, r, 240, 40),
+            None => render::render_rgb_legend(st.explained.as_deref(), 240, 40),
+        })
+        .collect();
+    let image = image::DynamicImage::ImageRgb8((*input).clone()).to_rgba8();
+    Ok((
+        maps,
+        Drawn {
+            key: draw_key,
+            image,
+            strip,
+            lens,
+            lens_scale: scale,
+            legends,
+        },
+    ))
+}
+
+fn to_color_image(img: &RgbaImage) -> egui::ColorImage {
+    egui::ColorImage::from_rgba_unmultiplied(
+        [img.width() as usize, img.height() as usize],
+        img.as_raw(),
+    )
+}
+
+impl Pictures {
+    /// Whether a job is running.
+    pub fn is_busy(&self) -> bool {
+        self.job.is_some()
+    }
+
+    /// Whether pictures wait to be turned into textures (the next frame does it).
+    pub fn has_upload(&self) -> bool {
+        self.upload.is_some()
+    }
+
+    /// Drop everything (no result to show).
+    pub fn clear(&mut self) {
+        self.maps = None;
+        self.textures = None;
+        self.problem = None;
+        self.job = None;
+        self.upload = None;
+    }
+
+    /// Ask for the pictures of `outputs` under `settings`; starts a job when something changed.
+    /// `wake` is called when the job is done (the window passes a repaint request).
+    pub fn want(
+        &mut self,
+        run: &str,
+        outputs: &Arc<StageOutputs>,
+        input: &Arc<RgbImage>,
+        image_size: (u32, u32),
+        settings: &Settings,
+        wake: Option<Box<dyn Fn() + Send>>,
+    ) {
+        let map_key = MapKey::of(run, settings);
+        let draw_key = DrawKey::of(settings, outputs.stages.len());
+        if self
+            .job
+            .as_ref()
+            .is_some_and(|j| j.map_key == map_key && j.draw_key == draw_key)
+        {
+            return;
+        }
+        let maps_current = self.maps.as_ref().is_some_and(|m| m.key == map_key);
+        let drawn_key = self
+            .upload
+            .as_ref()
+            .map(|d| &d.key)
+            .or(self.textures.as_ref().map(|t| &t.key));
+        if maps_current && drawn_key == Some(&draw_key) {
+            self.job = None;
+            return;
+        }
+        if !maps_current {
+            if self.problem.is_some() && self.job.is_none() && self.failed_for(&map_key) {
+                return; // the same request failed already; it is on screen why
+            }
+            // Other maps: nothing of the old ones may stay on screen.
+            self.maps = None;
+            self.textures = None;
+            self.upload = None;
+        }
+        self.problem = None;
+        let reuse = if maps_current {
+            self.maps.clone()
+        } else {
+            None
+        };
+        let (tx, rx) = channel();
+        let (o, i, mk, dk) = (
+            outputs.clone(),
+            input.clone(),
+            map_key.clone(),
+            draw_key.clone(),
+        );
+        let spawned = std::thread::Builder::new()
+            .name(THREAD_NAME.into())
+            .spawn(move || {
+                let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    work(o, i, image_size, mk, dk, reuse)
+                }))
+                .unwrap_or_else(|_| Err(Error::Internal("preparing the maps panicked".into())));
+                let _ = tx.send(r);
+                if let Some(w) = wake {
+                    w();
+                }
+            });
+        match spawned {
+            Ok(_) => {
+                self.failed = None;
+                self.job = Some(Job {
+                    map_key,
+                    draw_key,
+                    rx,
+                })
+            }
+            Err(e) => self.problem = Some(format!("cannot start preparing the maps: {e}")),
+        }
+    }
+
+    fn failed_for(&self, key: &MapKey) -> bool {
+        self.failed.as_ref() == Some(key)
+    }
+
+    /// Take a finished job's result; an error message when preparing failed.
+    pub fn poll(&mut self) -> Option<String> {
+        let job = self.job.as_ref()?;
+        let result = match job.rx.try_recv() {
+            Ok(r) => r,
+            Err(TryRecvError::Empty) => return None,
+            Err(TryRecvError::Disconnected) => {
+                Err(Error::Internal("the map thread stopped".into()))
+            }
+        };
+        let job = self.job.take().expect("checked");
+        match result {
+            Ok((maps, drawn)) => {
+                if self.maps.as_ref().is_none_or(|m| m.id != maps.id) {
+                    self.work.maps_prepared += 1;
+                }
+                self.work.pictures_drawn += 1;
+                self.maps = Some(maps);
+                self.upload = Some(drawn);
+                None
+            }
+            Err(e) => {
+                let msg = format!("no maps for {}: {e}", job.map_key.map);
+                self.maps = None;
+                self.textures = None;
+                self.upload = None;
+                self.failed = Some(job.map_key);
+                self.problem = Some(msg.clone());
+                Some(msg)
+            }
+        }
+    }
+
+    /// Turn finished pictures into textures (GUI thread; only copies pixels).
+    pub fn upload(&mut self, ctx: &egui::Context) {
+        let Some(d) = self.upload.take() else { return };
+        let tex =
+            |name: String, img: &RgbaImage, opts| ctx.load_texture(name, to_color_image(img), opts);
+        self.textures = Some(Textures {
+            image: tex("input".into(), &d.image, TextureOptions::NEAREST),
+            strip: d
+                .strip
+                .iter()
+                .enumerate()
+                .map(|(i, img)| tex(format!("stage{i}"), img, TextureOptions::NEAREST))
+                .collect(),
+            lens: d
+                .lens
+                .as_ref()
+                .map(|img| tex("lens".into(), img, TextureOptions::NEAREST)),
+            legends: d
+                .legends
+                .iter()
+                .enumerate()
+                .map(|(i, img)| tex(format!("legend{i}"), img, TextureOptions::LINEAR))
+                .collect(),
+            key: d.key,
+        });
+    }
+
+    /// The stage the lens picture shows, when there is one.
+    pub fn lens_stage(&self) -> Option<usize> {
+        self.textures
+            .as_ref()
+            .filter(|t| t.lens.is_some())
+            .map(|t| t.key.focus)
+    }
+}

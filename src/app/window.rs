@@ -1,0 +1,110 @@
+//! One frame of the window: take in what the threads finished, draw every panel from the
+//! state, then apply the actions the panels returned. The eframe glue and the headless tests
+//! both drive this.
+
+use super::actions::Action;
+use super::canvas::CanvasTools;
+use super::panels::controls::Controls;
+use super::panels::help::Help;
+use super::panels::keys::shortcuts;
+use super::panels::lens::Lens;
+use super::panels::load_report::LoadReportWindow;
+use super::panels::messages::MessageLog;
+use super::panels::pointer::Pointer;
+use super::panels::readout::Readout;
+use super::panels::region_panel::RegionPanel;
+use super::panels::region_table::RegionTable;
+use super::panels::sources::SourceBar;
+use super::panels::strip::StageStrip;
+use super::settings::Settings;
+use super::state::Workbench;
+use std::path::PathBuf;
+
+/// The panels' own widget state.
+#[derive(Default)]
+pub struct Panels {
+    pub sources: SourceBar,
+    pub messages: MessageLog,
+    pub readout: Readout,
+    pub controls: Controls,
+    pub regions: RegionPanel,
+    pub table: RegionTable,
+    pub strip: StageStrip,
+    pub lens: Lens,
+    pub canvas: CanvasTools,
+    pub pointer: Pointer,
+    pub help: Help,
+    pub report: LoadReportWindow,
+}
+
+/// The whole window: the state and the panels.
+pub struct Window {
+    pub bench: Workbench,
+    pub panels: Panels,
+}
+
+impl Window {
+    pub fn new(settings: Settings) -> Self {
+        Window {
+            bench: Workbench::new(settings),
+            panels: Panels::default(),
+        }
+    }
+
+    /// Draw one frame into `ui`.
+    pub fn ui(&mut self, ui: &mut egui::Ui) {
+        let ctx = ui.ctx().clone();
+        let Window { bench, panels: p } = self;
+        bench.attach(&ctx);
+        bench.poll();
+        bench.pictures.upload(&ctx);
+        let mut actions: Vec<Action> = Vec::new();
+        let dropped: Vec<PathBuf> = ctx.input(|i| {
+            i.raw
+                .dropped_files
+                .iter()
+                .map(|f| f.path().to_path_buf())
+                .filter(|p| !p.as_os_str().is_empty())
+                .collect()
+        });
+        if !dropped.is_empty() {
+            actions.push(Action::OpenPaths(dropped));
+        }
+        let b: &Workbench = bench;
+        actions.extend(shortcuts(ui, b, &mut p.canvas, &mut p.lens));
+        actions.extend(p.sources.ui(ui, b));
+        actions.extend(p.messages.ui(ui, b));
+        actions.extend(p.readout.ui(ui, b, &p.pointer));
+        actions.extend(p.controls.ui(ui, b));
+        egui::Panel::right("regions")
+            .resizable(true)
+            .default_size(330.0)
+            .show(ui, |ui| {
+                egui::ScrollArea::vertical().show(ui, |ui| {
+                    actions.extend(p.regions.ui(ui, b, &mut p.canvas));
+                    actions.extend(p.table.ui(ui, b));
+                });
+            });
+        egui::CentralPanel::default().show(ui, |ui| {
+            actions.extend(p.strip.ui(ui, b, &mut p.canvas, &mut p.pointer));
+            if b.pictures.textures.is_some() {
+                ui.separator();
+                actions.extend(p.lens.ui(ui, b, &mut p.canvas, &mut p.pointer));
+            }
+        });
+        if b.show_help {
+            actions.extend(p.help.ui(ui, true));
+        }
+        if b.show_report {
+            actions.extend(p.report.ui(ui, b));
+        }
+        p.pointer.end_frame();
+        for a in actions {
+            bench.apply(a);
+        }
+        bench.refresh();
+        if bench.is_working() {
+            ctx.request_repaint_after(std::time::Duration::from_millis(50));
+        }
+    }
+}
