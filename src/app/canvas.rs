@@ -146,7 +146,7 @@ impl CanvasTools {
     /// Close the polygon being drawn (three vertices at least).
     pub fn finish_polygon(&mut self) -> Option<Action> {
         let points = std::mem::take(&mut self.draft);
-        (points.len() >= 3).then(|| Action::Region(RegionEdit::Add(Shape::Polygon { points })))
+        (points.len() >= 3).then_some(Action::Region(RegionEdit::Add(Shape::Polygon { points })))
     }
 
     /// Clicks and drags on a picture placed at `at`.

@@ -436,6 +436,11 @@ impl Pictures {
         });
     }
 
+    /// The maps and their textures, when both are on screen.
+    pub fn on_screen(&self) -> Option<(&PreparedMaps, &Textures)> {
+        Some((self.maps.as_deref()?, self.textures.as_ref()?))
+    }
+
     /// The stage the lens picture shows, when there is one.
     pub fn lens_stage(&self) -> Option<usize> {
         self.textures

@@ -174,17 +174,4 @@ impl RunArgs {
             memory_limit,
         })
     }
-
-    /// Arguments for `weights` with every default, for tests and code that builds commands.
-    pub fn for_weights(weights: impl Into<PathBuf>) -> Self {
-        RunArgs {
-            weights: weights.into(),
-            config: None,
-            pad_order: None,
-            small_stage: None,
-            mean: None,
-            std: None,
-            max_memory_gb: DEFAULT_MEMORY_GB,
-        }
-    }
 }

@@ -17,7 +17,7 @@ pub const DEFAULT_MEMORY_GB: f64 = DEFAULT_MEMORY_LIMIT as f64 / 1e9;
 
 /// A memory limit given in GB, in bytes; `None` unless positive and finite.
 pub fn memory_limit_from_gb(gb: f64) -> Option<u64> {
-    (gb.is_finite() && gb > 0.0).then(|| (gb * 1e9) as u64)
+    (gb.is_finite() && gb > 0.0).then_some((gb * 1e9) as u64)
 }
 
 /// Per-channel normalisation of the network input.

@@ -44,8 +44,7 @@ impl Lens {
         pointer: &mut Pointer,
     ) -> Vec<Action> {
         let mut out = Vec::new();
-        let (Some(maps), Some(tex)) = (bench.pictures.maps.as_deref(), &bench.pictures.textures)
-        else {
+        let Some((maps, tex)) = bench.pictures.on_screen() else {
             return out;
         };
         let (Some(lens_tex), Some(sg)) = (

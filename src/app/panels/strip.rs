@@ -60,8 +60,7 @@ impl StageStrip {
         pointer: &mut Pointer,
     ) -> Vec<Action> {
         let mut out = Vec::new();
-        let (Some(maps), Some(tex)) = (bench.pictures.maps.as_deref(), &bench.pictures.textures)
-        else {
+        let Some((maps, tex)) = bench.pictures.on_screen() else {
             ui.centered_and_justified(|ui| {
                 ui.label(empty_reason(bench));
             });
