@@ -476,8 +476,7 @@ pub fn train(
 impl DemoModel {
     /// Load a saved demo checkpoint (backbone and the `head.cells` head).
     pub fn load(path: &Path) -> Result<Self> {
-        let ckpt = crate::engine::Checkpoint::open(path)?;
-        let backbone = Backbone::from_checkpoint(&ckpt, &Default::default())?;
+        let backbone = crate::engine::open_checkpoint(path, None)?.model;
         let all = candle_core::safetensors::load(path, &Device::Cpu)
             .map_err(|e| Error::bad_file(path, format!("cannot read: {e}")))?;
         let get = |k: &str| {

@@ -385,14 +385,3 @@ impl PatchMerging {
         Ok((y, out))
     }
 }
-
-/// `max |a - b| / max |b|`, the comparison the reference tests use.
-pub fn relative_max_diff(a: &Tensor, b: &Tensor) -> Result<f32> {
-    let diff = (a - b)?
-        .abs()?
-        .flatten_all()?
-        .max(D::Minus1)?
-        .to_scalar::<f32>()?;
-    let scale = b.abs()?.flatten_all()?.max(D::Minus1)?.to_scalar::<f32>()?;
-    Ok(diff / scale.max(f32::MIN_POSITIVE))
-}

@@ -306,6 +306,26 @@ fn cli_exit_statuses_and_messages() {
     assert_eq!(code, 1);
     assert!(err.contains("leaf.png"), "{err}");
 
+    // A configuration file asking for a stage without blocks is bad usage, named.
+    let config = dir.path().join("shape.json");
+    std::fs::write(&config, r#"{"depths": [2, 0]}"#).unwrap();
+    let (code, err) = mullion(&[
+        "summary",
+        "--weights",
+        w,
+        "--image",
+        i,
+        "--config",
+        config.to_str().unwrap(),
+    ]);
+    assert_eq!(code, 2, "{err}");
+    assert!(
+        err.contains("shape.json") && err.contains("stage 1"),
+        "{err}"
+    );
+    let (code, err) = mullion(&["inspect", w, "--config", config.to_str().unwrap()]);
+    assert_eq!(code, 2, "{err}");
+
     // A broken checkpoint through the command line.
     let (code, err) = mullion(&["inspect", i]);
     assert_eq!(code, 1);
