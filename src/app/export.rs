@@ -15,6 +15,7 @@ use std::sync::Arc;
 pub struct ExportRequest {
     pub maps: Arc<PreparedMaps>,
     pub draw: DrawKey,
+    pub overlays: crate::render::Overlays,
     pub sidecar: Option<Sidecar>,
     /// How the image became the network input, for the caption.
     pub policy: String,
@@ -89,12 +90,7 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
         image: &annotated,
         geometry: &maps.outputs.geometry,
         stages: &maps.stages,
-        style: render::figure_panel_style(
-            req.draw.colormap,
-            req.draw.opacity,
-            req.draw.overlays,
-            scale,
-        ),
+        style: render::figure_panel_style(req.draw.colormap, req.draw.opacity, req.overlays, scale),
         checkpoint: req.checkpoint.clone(),
         map_label: maps.map_label.clone(),
         notes: notes.clone(),

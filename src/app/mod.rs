@@ -11,6 +11,7 @@ pub mod actions;
 pub mod canvas;
 pub mod export;
 pub mod loading;
+pub mod overlay;
 pub mod panels;
 pub mod pictures;
 pub mod region_doc;

@@ -13,7 +13,7 @@ use crate::analysis::{
 };
 use crate::engine::StageOutputs;
 use crate::error::{Error, Result};
-use crate::render::{self, line_width_for_scale, Overlays, PanelStyle};
+use crate::render::{self, Overlays, PanelStyle};
 use egui::{TextureHandle, TextureOptions};
 use image::{RgbImage, RgbaImage};
 use std::sync::atomic::{AtomicU64, Ordering};
@@ -36,12 +36,13 @@ pub struct MapKey {
     pub spec: ScaleSpec,
 }
 
-/// What the pictures drawn from the maps depend on, beyond the maps.
+/// What the pictures drawn from the maps depend on, beyond the maps. Window grids and the
+/// padding hatch are not in the pictures: they are drawn on screen over them (see
+/// `app::overlay`), so toggling them redraws nothing.
 #[derive(Clone, Debug, PartialEq)]
 pub struct DrawKey {
     pub colormap: Colormap,
     pub opacity: f32,
-    pub overlays: Overlays,
     /// The stage drawn large in the lens.
     pub focus: usize,
 }
@@ -61,26 +62,21 @@ impl DrawKey {
         DrawKey {
             colormap: Colormap::parse(&s.colormap).unwrap_or_default(),
             opacity: s.opacity.clamp(0.0, 1.0),
-            overlays: Overlays {
-                regular_grid: s.show_regular,
-                shifted_grid: s.show_shifted,
-                padding: s.show_padding,
-                block: 2 * s.block_pair,
-                grid_in_padding: true,
-                line_width: 1,
-            },
             focus: s.focus_stage.min(n_stages.saturating_sub(1)),
         }
     }
 
-    /// The panel style at `scale` output pixels per input pixel.
+    /// The picture style at `scale` output pixels per input pixel: the map over the image,
+    /// padding as a plain fill, no grid.
     pub fn style(&self, scale: f32) -> PanelStyle {
         PanelStyle {
             colormap: self.colormap,
             opacity: self.opacity,
             overlays: Overlays {
-                line_width: line_width_for_scale(scale),
-                ..self.overlays
+                regular_grid: false,
+                shifted_grid: false,
+                padding: false,
+                ..Overlays::default()
             },
             scale,
         }

@@ -2,6 +2,7 @@
 
 use crate::analysis::ScaleSpec;
 use crate::engine::input::{InputPolicy, Normalisation};
+use crate::render::Overlays;
 use serde::{Deserialize, Serialize};
 use std::path::PathBuf;
 
@@ -67,6 +68,18 @@ impl Settings {
             shared_across_stages: self.shared_scale,
             log: self.log_scale,
             clip_percentiles: (self.clip_low, self.clip_high),
+        }
+    }
+
+    /// The grids and hatch asked for.
+    pub fn overlays(&self) -> Overlays {
+        Overlays {
+            regular_grid: self.show_regular,
+            shifted_grid: self.show_shifted,
+            padding: self.show_padding,
+            block: 2 * self.block_pair,
+            grid_in_padding: true,
+            line_width: 1,
         }
     }
 

@@ -595,6 +595,7 @@ impl Workbench {
         let req = ExportRequest {
             maps,
             draw: tex.key.clone(),
+            overlays: self.settings.overlays(),
             sidecar: self.regions.sidecar.clone(),
             policy: self.settings.policy.describe(),
             checkpoint: self

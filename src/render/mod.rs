@@ -16,7 +16,7 @@ pub use figure::{
 pub use legend::{format_tick, linear_ticks, log_ticks, render_legend, render_rgb_legend};
 pub use panel::{
     blend, border_px, canvas_size, is_hatch, line_width_for_scale, render_map_only, render_panel,
-    to_px, Overlays, PanelStyle, BACKGROUND, HATCH_PERIOD, INK, MAX_SIDE, PADDING_FILL,
-    PADDING_HATCH, REGULAR_GRID, SHIFTED_GRID,
+    to_px, window_borders, Border, GridKind, Overlays, PanelStyle, BACKGROUND, HATCH_PERIOD, INK,
+    MAX_SIDE, PADDING_FILL, PADDING_HATCH, REGULAR_GRID, SHIFTED_GRID,
 };
 pub use text::{draw_text, line_height, text_width, wrap_text};

@@ -262,17 +262,9 @@ fn draw_panel(
     } else {
         (ih, iw)
     };
-    let (regular, shifted) = style.overlays.blocks(sg);
-    if style.overlays.regular_grid {
-        if let Some(b) = regular {
-            draw_pieces(&mut out, b, stride, clip, style, REGULAR_GRID);
-        }
-    }
-    if style.overlays.shifted_grid {
-        if let Some(b) = shifted {
-            draw_pieces(&mut out, b, stride, clip, style, SHIFTED_GRID);
-        }
-    }
+    let borders = window_borders(sg, &style.overlays, clip);
+    draw_borders(&mut out, &borders, GridKind::Regular, style);
+    draw_borders(&mut out, &borders, GridKind::Shifted, style);
     Ok(out)
 }
 
@@ -281,39 +273,114 @@ pub fn border_px(b: usize, scale: f32, line_width: u32, out_len: u32) -> u32 {
     to_px(b, scale).min(out_len.saturating_sub(line_width.max(1)))
 }
 
-/// Draw the border of every piece of `block` (token rectangles times the stride, clipped to
-/// `clip` = (height, width) in input pixels).
-fn draw_pieces(
-    img: &mut RgbaImage,
-    block: &BlockGeometry,
-    stride: usize,
+/// Which window grid a border belongs to.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub enum GridKind {
+    Regular,
+    Shifted,
+}
+
+/// One straight window border, in input pixels: along x at row `at` (`vertical` false) or
+/// along y at column `at` (`vertical` true), from `from` to `to`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
+pub struct Border {
+    pub kind: GridKind,
+    pub vertical: bool,
+    pub at: usize,
+    pub from: usize,
+    pub to: usize,
+}
+
+/// Every window border the overlays ask for on `stage`, each once: the edges of every piece
+/// of the chosen blocks ([`BlockGeometry::pieces`]), clipped to `clip` = (height, width) in input
+/// pixels, with edges shared by neighbouring pieces merged into one border.
+pub fn window_borders(
+    stage: &StageGeometry,
+    overlays: &Overlays,
     clip: (usize, usize),
-    style: &PanelStyle,
-    colour: [u8; 3],
-) {
+) -> Vec<Border> {
+    let (regular, shifted) = overlays.blocks(stage);
+    let mut edges: std::collections::BTreeMap<(GridKind, bool, usize), Vec<(usize, usize)>> =
+        Default::default();
+    let chosen = [
+        (GridKind::Regular, regular.filter(|_| overlays.regular_grid)),
+        (GridKind::Shifted, shifted.filter(|_| overlays.shifted_grid)),
+    ];
+    for (kind, block) in chosen {
+        let Some(block) = block else { continue };
+        for p in block.pieces() {
+            let s = stage.stride;
+            let (y0, y1) = ((p.row0 * s).min(clip.0), (p.row1 * s).min(clip.0));
+            let (x0, x1) = ((p.col0 * s).min(clip.1), (p.col1 * s).min(clip.1));
+            if y0 >= y1 || x0 >= x1 {
+                continue;
+            }
+            for (vertical, at, from, to) in [
+                (false, y0, x0, x1),
+                (false, y1, x0, x1),
+                (true, x0, y0, y1),
+                (true, x1, y0, y1),
+            ] {
+                edges
+                    .entry((kind, vertical, at))
+                    .or_default()
+                    .push((from, to));
+            }
+        }
+    }
+    let mut out = Vec::new();
+    for ((kind, vertical, at), mut spans) in edges {
+        spans.sort_unstable();
+        let mut cur = spans[0];
+        for &(a, b) in &spans[1..] {
+            if a <= cur.1 {
+                cur.1 = cur.1.max(b);
+            } else {
+                out.push(Border {
+                    kind,
+                    vertical,
+                    at,
+                    from: cur.0,
+                    to: cur.1,
+                });
+                cur = (a, b);
+            }
+        }
+        out.push(Border {
+            kind,
+            vertical,
+            at,
+            from: cur.0,
+            to: cur.1,
+        });
+    }
+    out
+}
+
+/// Draw `borders` of one kind into a picture at the style's scale.
+fn draw_borders(img: &mut RgbaImage, borders: &[Border], kind: GridKind, style: &PanelStyle) {
     let lw = style.overlays.line_width.max(1);
     let (oh, ow) = (img.height(), img.width());
-    for p in block.pieces() {
-        let y0 = (p.row0 * stride).min(clip.0);
-        let y1 = (p.row1 * stride).min(clip.0);
-        let x0 = (p.col0 * stride).min(clip.1);
-        let x1 = (p.col1 * stride).min(clip.1);
-        if y0 >= y1 || x0 >= x1 {
-            continue;
+    let colour = match kind {
+        GridKind::Regular => REGULAR_GRID,
+        GridKind::Shifted => SHIFTED_GRID,
+    };
+    for b in borders.iter().filter(|b| b.kind == kind) {
+        if b.vertical {
+            let x = border_px(b.at, style.scale, lw, ow);
+            let (y0, y1) = (
+                border_px(b.from, style.scale, lw, oh),
+                border_px(b.to, style.scale, lw, oh),
+            );
+            fill_rect(img, x, y0, x + lw, y1 + lw, colour);
+        } else {
+            let y = border_px(b.at, style.scale, lw, oh);
+            let (x0, x1) = (
+                border_px(b.from, style.scale, lw, ow),
+                border_px(b.to, style.scale, lw, ow),
+            );
+            fill_rect(img, x0, y, x1 + lw, y + lw, colour);
         }
-        let (py0, py1) = (
-            border_px(y0, style.scale, lw, oh),
-            border_px(y1, style.scale, lw, oh),
-        );
-        let (px0, px1) = (
-            border_px(x0, style.scale, lw, ow),
-            border_px(x1, style.scale, lw, ow),
-        );
-        // Horizontal edges span the piece including the far corner; vertical ones likewise.
-        fill_rect(img, px0, py0, px1 + lw, py0 + lw, colour);
-        fill_rect(img, px0, py1, px1 + lw, py1 + lw, colour);
-        fill_rect(img, px0, py0, px0 + lw, py1 + lw, colour);
-        fill_rect(img, px1, py0, px1 + lw, py1 + lw, colour);
     }
 }
 

@@ -117,13 +117,18 @@ fn open_run_switch_toggle_save() {
     wait(&mut h);
     assert_eq!(h.state().bench.settings.map_kind, "norm");
 
-    // A grid toggle only redraws: the maps are not prepared again.
+    // A grid toggle is drawn on screen over the pictures: no new maps, no new pictures.
     let before = h.state().bench.pictures.work;
     assert!(!h.state().bench.settings.show_shifted);
     h.get_by_label("Shifted window grid").click();
     h.run_steps(2);
     wait(&mut h);
     assert!(h.state().bench.settings.show_shifted);
+    assert_eq!(h.state().bench.pictures.work, before, "nothing made again");
+    // The opacity only redraws the pictures: the maps are not prepared again.
+    let mut s = h.state().bench.settings.clone();
+    s.opacity = 0.3;
+    apply(&mut h, Action::SetSettings(Box::new(s)));
     let after = h.state().bench.pictures.work;
     assert_eq!(after.maps_prepared, before.maps_prepared, "no new maps");
     assert_eq!(

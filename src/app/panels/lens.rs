@@ -5,6 +5,7 @@
 use super::pointer::{crosshair, to_input_px, Pointer};
 use crate::app::actions::Action;
 use crate::app::canvas::{CanvasTools, Placement, Tool};
+use crate::app::overlay::paint_overlays;
 use crate::app::state::Workbench;
 use crate::render;
 use egui::{Color32, Pos2, Rect, Sense, Vec2};
@@ -94,12 +95,28 @@ impl Lens {
             Rect::from_min_max(Pos2::ZERO, Pos2::new(1.0, 1.0)),
             Color32::WHITE,
         );
+        let dense = paint_overlays(
+            &painter,
+            sg,
+            maps.outputs.geometry.image,
+            &bench.settings.overlays(),
+            rect,
+        );
         canvas.paint(
             &painter,
             &at,
             &bench.regions,
             Some(&bench.regions.highlight),
         );
+        if !dense.is_empty() {
+            painter.text(
+                area.left_top() + Vec2::new(6.0, 6.0),
+                egui::Align2::LEFT_TOP,
+                "windows too small at this zoom for a grid; zoom in (scroll)",
+                egui::FontId::proportional(12.0),
+                Color32::WHITE,
+            );
+        }
         if let Some(p) = resp.hover_pos() {
             pointer.set(to_input_px(rect, canvas_px, p));
         }

@@ -60,7 +60,7 @@ impl Readout {
             .resizable(false)
             .exact_size(rows as f32 * line_h + 8.0)
             .show(ui, |ui| {
-                let block = bench.drawn_key().map_or(0, |k| k.overlays.block);
+                let block = bench.settings.overlays().block;
                 match (maps, pointer.hover) {
                     (Some(m), Some(p)) => {
                         for line in hover_lines(m, block, p) {

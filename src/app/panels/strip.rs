@@ -5,6 +5,7 @@ use super::pointer::{crosshair, to_input_px, Pointer};
 use crate::analysis::PreparedStage;
 use crate::app::actions::Action;
 use crate::app::canvas::{CanvasTools, Placement, Tool};
+use crate::app::overlay::paint_overlays;
 use crate::app::state::Workbench;
 use crate::render;
 use egui::{Sense, Vec2};
@@ -67,6 +68,7 @@ impl StageStrip {
             return out;
         };
         let g = &maps.outputs.geometry;
+        let overlays = bench.settings.overlays();
         let (sx, sy) = maps.image_to_input();
         let to_image = (1.0 / sx, 1.0 / sy);
         ui.label(egui::RichText::new(format!("Stage strip — {}", maps.map_label)).strong());
@@ -90,6 +92,7 @@ impl StageStrip {
                 let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
                 let size = Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale);
                 ui.vertical(|ui| {
+                    let mut dense = false;
                     let title = if idx == 0 {
                         "image".to_string()
                     } else {
@@ -118,8 +121,21 @@ impl StageStrip {
                         };
                         out.extend(canvas.interact(&resp, &at, &bench.regions));
                         let painter = ui.painter_at(resp.rect);
+                        if idx > 0 {
+                            dense = !paint_overlays(
+                                &painter,
+                                &g.stages[idx - 1],
+                                g.image,
+                                &overlays,
+                                resp.rect,
+                            )
+                            .is_empty();
+                        }
                         canvas.paint(&painter, &at, &bench.regions, None);
                         crosshair(&painter, resp.rect, resp.rect, canvas_px, pointer.hover);
+                    }
+                    if dense {
+                        ui.small("windows too small here for a grid; see the lens");
                     }
                     if idx > 0 {
                         if let Some(t) = tex.legends.get(idx - 1) {
