@@ -9,7 +9,7 @@ pub mod shape;
 pub mod sidecar;
 
 pub use history::Edits;
-pub use palette::{colour_name, PALETTE, PALETTE_NAMES};
+pub use palette::{colour_name, PALETTE, PALETTE_NAMES, PIN_COLOUR};
 pub use shape::{clip_ring, ring_crosses_itself, shoelace, Rect, Shape};
 pub use sidecar::{
     load, load_with_warnings, move_aside, save, sidecar_path, to_json, validate, LabelDef, Pin,

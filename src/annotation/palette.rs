@@ -1,22 +1,27 @@
 //! The label colours and their plain names.
 
-/// Eight label colours, chosen to stay apart from each other and from the viridis, magma and
-/// cividis maps they are drawn over (no two share a hue family; lightness alternates).
+/// Eight label colours, chosen to stay apart from each other, from the window-grid and padding
+/// colours and from every entry of the viridis, magma and cividis maps they are drawn over (at
+/// least 25 CIE 1976 Delta E from each other and 30 from the maps; `tests/suite/render.rs`
+/// checks it), with a lightness that shows on dark and light maps alike.
 pub const PALETTE: [[u8; 3]; 8] = [
-    [255, 112, 40],  // orange
-    [40, 200, 255],  // sky blue
-    [235, 40, 150],  // magenta
-    [150, 240, 60],  // lime
-    [255, 230, 40],  // yellow
-    [150, 90, 255],  // violet
-    [255, 255, 255], // white
-    [200, 30, 30],   // red
+    [240, 144, 0],   // orange
+    [48, 112, 240],  // blue
+    [240, 0, 176],   // pink
+    [0, 240, 0],     // green
+    [0, 240, 240],   // cyan
+    [240, 0, 0],     // red
+    [160, 80, 240],  // violet
+    [224, 144, 160], // rose
 ];
 
 /// Plain names of the [`PALETTE`] colours, for captions.
 pub const PALETTE_NAMES: [&str; 8] = [
-    "orange", "sky blue", "magenta", "lime", "yellow", "violet", "white", "red",
+    "orange", "blue", "pink", "green", "cyan", "red", "violet", "rose",
 ];
+
+/// The colour pinned notes are marked in (kept apart from the palette and the maps too).
+pub const PIN_COLOUR: [u8; 3] = [208, 160, 240];
 
 /// A colour's palette name, or `#rrggbb` for a colour outside the palette.
 pub fn colour_name(c: [u8; 3]) -> String {

@@ -261,7 +261,8 @@ impl CanvasTools {
                 Color32::from_rgba_unmultiplied(255, 255, 255, 50),
             );
         }
-        for r in &sc.regions {
+        let shown: &[crate::annotation::Region] = if doc.outlines { &sc.regions } else { &[] };
+        for r in shown {
             let shape = match &self.grab {
                 Some(g) if g.id == r.id => &g.shape,
                 _ => &r.shape,
@@ -288,7 +289,7 @@ impl CanvasTools {
                 );
             }
         }
-        let pin_colour = Color32::from_rgb(255, 245, 120);
+        let pin_colour = colour(crate::annotation::PIN_COLOUR);
         for pin in &sc.pins {
             let p = to_screen(pin.at);
             painter.circle_filled(p, 4.0, pin_colour);

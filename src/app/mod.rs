@@ -41,11 +41,16 @@ impl eframe::App for WindowApp {
     }
 }
 
-/// Open the window on `images` with `weights` (or random weights, said so on screen).
-pub fn run(images: Vec<PathBuf>, weights: Option<PathBuf>) -> Result<()> {
+/// The window's size when none is asked for, in points.
+pub const DEFAULT_SIZE: (f32, f32) = (1400.0, 900.0);
+
+/// Open the window on `images` with `weights` (or random weights, said so on screen), at
+/// `size` points (default [`DEFAULT_SIZE`]).
+pub fn run(images: Vec<PathBuf>, weights: Option<PathBuf>, size: Option<(f32, f32)>) -> Result<()> {
+    let (w, h) = size.unwrap_or(DEFAULT_SIZE);
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
-            .with_inner_size([1400.0, 900.0])
+            .with_inner_size([w, h])
             .with_title("Mullion"),
         ..Default::default()
     };

@@ -21,6 +21,8 @@ pub struct RegionDoc {
     pub edits: Edits,
     /// Label given to new regions.
     pub label: String,
+    /// Whether outlines are drawn over the pictures (mirrors the setting).
+    pub outlines: bool,
     pub selected: Option<u64>,
     /// One row per region and stage for the maps on screen (scalar maps only).
     pub stats: Vec<RegionStats>,
@@ -45,6 +47,7 @@ impl Default for RegionDoc {
             project_dir: String::new(),
             edits: Edits::new(200),
             label: "region".into(),
+            outlines: true,
             selected: None,
             stats: Vec::new(),
             highlight: Vec::new(),

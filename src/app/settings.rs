@@ -21,6 +21,8 @@ pub struct Settings {
     pub show_regular: bool,
     pub show_shifted: bool,
     pub show_padding: bool,
+    /// Draw the region outlines over the pictures.
+    pub show_regions: bool,
     /// Which pair of blocks' windows to draw: block 2k (regular) and 2k+1 (shifted).
     pub block_pair: usize,
     pub focus_stage: usize,
@@ -44,6 +46,7 @@ impl Default for Settings {
             show_regular: true,
             show_shifted: false,
             show_padding: true,
+            show_regions: true,
             block_pair: 0,
             focus_stage: 0,
             opacity: 0.6,

@@ -513,6 +513,7 @@ impl Workbench {
     /// Start whatever the current result and settings need (pictures) and bring the region
     /// numbers up to date; call once per frame after the actions.
     pub fn refresh(&mut self) {
+        self.regions.outlines = self.settings.show_regions;
         match &self.shown {
             Some(shown) => {
                 let size = self

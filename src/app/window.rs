@@ -41,6 +41,19 @@ pub struct Panels {
 pub struct Window {
     pub bench: Workbench,
     pub panels: Panels,
+    styled: bool,
+}
+
+/// No text in the window is smaller than this (points).
+pub const MIN_TEXT: f32 = 11.0;
+
+/// Raise every text style to at least [`MIN_TEXT`].
+fn readable_text(ctx: &egui::Context) {
+    ctx.all_styles_mut(|style| {
+        for font in style.text_styles.values_mut() {
+            font.size = font.size.max(MIN_TEXT);
+        }
+    });
 }
 
 impl Window {
@@ -48,13 +61,20 @@ impl Window {
         Window {
             bench: Workbench::new(settings),
             panels: Panels::default(),
+            styled: false,
         }
     }
 
     /// Draw one frame into `ui`.
     pub fn ui(&mut self, ui: &mut egui::Ui) {
         let ctx = ui.ctx().clone();
-        let Window { bench, panels: p } = self;
+        if !self.styled {
+            readable_text(&ctx);
+            self.styled = true;
+        }
+        let Window {
+            bench, panels: p, ..
+        } = self;
         bench.attach(&ctx);
         bench.poll();
         bench.pictures.upload(&ctx);
@@ -86,7 +106,16 @@ impl Window {
                 });
             });
         egui::CentralPanel::default().show(ui, |ui| {
-            actions.extend(p.strip.ui(ui, b, &mut p.canvas, &mut p.pointer));
+            // The strip takes at most a little under half the height (scrolling when it needs
+            // more); the lens takes what is left.
+            let strip_h = (ui.available_height() * 0.45).clamp(120.0, 560.0);
+            p.strip.max_height = strip_h;
+            egui::ScrollArea::vertical()
+                .id_salt("strip")
+                .max_height(strip_h)
+                .show(ui, |ui| {
+                    actions.extend(p.strip.ui(ui, b, &mut p.canvas, &mut p.pointer));
+                });
             if b.pictures.textures.is_some() {
                 ui.separator();
                 actions.extend(p.lens.ui(ui, b, &mut p.canvas, &mut p.pointer));

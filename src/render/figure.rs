@@ -10,7 +10,7 @@ use super::panel::{
 };
 use super::text::{draw_text, line_height, text_width, wrap_text};
 use crate::analysis::{Map, PreparedStage, CAUTION};
-use crate::annotation::{colour_name, Shape, Sidecar, PALETTE};
+use crate::annotation::{colour_name, Shape, Sidecar, PALETTE, PIN_COLOUR};
 use crate::engine::geometry::Geometry;
 use crate::error::Result;
 use image::{RgbImage, Rgba, RgbaImage};
@@ -126,7 +126,7 @@ pub fn annotate_regions(image: &RgbImage, sc: &Sidecar) -> (RgbImage, Vec<String
         for d in -4i64..=4 {
             for (x, y) in [(cx + d, cy), (cx, cy + d)] {
                 if x >= 0 && y >= 0 && (x as u32) < w && (y as u32) < h {
-                    img.put_pixel(x as u32, y as u32, image::Rgb([255, 245, 120]));
+                    img.put_pixel(x as u32, y as u32, image::Rgb(PIN_COLOUR));
                 }
             }
         }
@@ -152,7 +152,7 @@ pub fn annotate_regions(image: &RgbImage, sc: &Sidecar) -> (RgbImage, Vec<String
     }
     for p in &sc.pins {
         notes.push(format!(
-            "pin at ({:.0}, {:.0}), yellow cross: {}",
+            "pin at ({:.0}, {:.0}), lavender cross: {}",
             p.at[0],
             p.at[1],
             p.text.trim()

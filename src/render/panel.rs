@@ -14,11 +14,11 @@ use image::{RgbImage, Rgba, RgbaImage};
 /// Colour of the regular (unshifted) window grid.
 pub const REGULAR_GRID: [u8; 3] = [255, 255, 255];
 /// Colour of the shifted window grid (window and mask-region borders).
-pub const SHIFTED_GRID: [u8; 3] = [0, 220, 255];
+pub const SHIFTED_GRID: [u8; 3] = [255, 0, 255];
 /// Base colour of padding (outside the image, inside the padded map).
 pub const PADDING_FILL: [u8; 3] = [176, 176, 176];
 /// Colour of the diagonal hatching on padding.
-pub const PADDING_HATCH: [u8; 3] = [112, 112, 112];
+pub const PADDING_HATCH: [u8; 3] = [0, 0, 224];
 /// Figure and legend background.
 pub const BACKGROUND: [u8; 3] = [255, 255, 255];
 /// Text colour.

@@ -26,27 +26,27 @@ impl Drop for Kill {
     }
 }
 
-#[test]
-fn the_demo_window_shows_the_image_and_the_stage_maps() {
+/// Open the real window under Xvfb on a `screen` (WxHxD) with `args`, wait until its maps are
+/// drawn and take a screenshot saved as `target/smoke/<name>`; `None` when Xvfb is missing and
+/// not required.
+fn screenshot(
+    screen: &str,
+    args: &[&str],
+    name: &str,
+    display_offset: u32,
+) -> Option<image::RgbImage> {
     if !(have("Xvfb") && have("import")) {
         assert!(
             std::env::var("MULLION_REQUIRE_XVFB").as_deref() != Ok("1"),
             "Xvfb and ImageMagick's import are required here (MULLION_REQUIRE_XVFB=1)"
         );
         eprintln!("skipped: Xvfb or import not installed (run .ci/run to install them)");
-        return;
+        return None;
     }
-    let display = format!(":{}", 90 + std::process::id() % 50);
+    let display = format!(":{}", 90 + display_offset + 2 * (std::process::id() % 40));
     let _x = Kill(
         Command::new("Xvfb")
-            .args([
-                display.as_str(),
-                "-screen",
-                "0",
-                "1600x1000x24",
-                "-nolisten",
-                "tcp",
-            ])
+            .args([display.as_str(), "-screen", "0", screen, "-nolisten", "tcp"])
             .stdout(Stdio::null())
             .stderr(Stdio::null())
             .spawn()
@@ -56,12 +56,13 @@ fn the_demo_window_shows_the_image_and_the_stage_maps() {
 
     let out_dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/smoke");
     std::fs::create_dir_all(&out_dir).unwrap();
-    let ready = out_dir.join("ready");
+    let ready = out_dir.join(format!("{name}.ready"));
     let _ = std::fs::remove_file(&ready);
     let runtime = tempfile::tempdir().unwrap();
     let config = tempfile::tempdir().unwrap();
     let _app = Kill(
         Command::new(env!("CARGO_BIN_EXE_mullion"))
+            .args(args)
             .env("DISPLAY", &display)
             .env("XDG_RUNTIME_DIR", runtime.path())
             .env("XDG_CONFIG_HOME", config.path())
@@ -81,7 +82,7 @@ fn the_demo_window_shows_the_image_and_the_stage_maps() {
         std::thread::sleep(Duration::from_millis(200));
     }
     std::thread::sleep(Duration::from_millis(1500));
-    let shot: PathBuf = out_dir.join("window.png");
+    let shot: PathBuf = out_dir.join(name);
     let status = Command::new("import")
         .args(["-display", &display, "-window", "root"])
         .arg(&shot)
@@ -91,7 +92,32 @@ fn the_demo_window_shows_the_image_and_the_stage_maps() {
     println!("screenshot: {}", shot.display());
     eprintln!("screenshot: {}", shot.display());
 
-    let img = image::open(&shot).unwrap().to_rgb8();
+    Some(image::open(&shot).unwrap().to_rgb8())
+}
+
+/// Standard deviation of the grey level over a rectangle (fractions of the width and height).
+fn spread(img: &image::RgbImage, x: (f32, f32), y: (f32, f32)) -> f64 {
+    let (w, h) = img.dimensions();
+    let (x0, x1) = ((x.0 * w as f32) as u32, (x.1 * w as f32) as u32);
+    let (y0, y1) = ((y.0 * h as f32) as u32, (y.1 * h as f32) as u32);
+    let (mut n, mut s, mut s2) = (0f64, 0f64, 0f64);
+    for yy in y0..y1 {
+        for xx in x0..x1 {
+            let p = img.get_pixel(xx, yy);
+            let v = (p[0] as f64 + p[1] as f64 + p[2] as f64) / 3.0;
+            s += v;
+            s2 += v * v;
+            n += 1.0;
+        }
+    }
+    (s2 / n - (s / n).powi(2)).sqrt()
+}
+
+#[test]
+fn the_demo_window_shows_the_image_and_the_stage_maps() {
+    let Some(img) = screenshot("1600x1000x24", &[], "window.png", 0) else {
+        return;
+    };
     // Not blank: many distinct colours overall.
     let mut colours: Vec<[u8; 3]> = img.pixels().map(|p| p.0).collect();
     colours.sort_unstable();
@@ -127,4 +153,24 @@ fn the_demo_window_shows_the_image_and_the_stage_maps() {
             "strip band {k} is flat (sd {sd:.1}): image or a stage panel missing"
         );
     }
+}
+
+/// At 1280x720 the strip, the lens and the panels all fit: the lens below the strip shows a
+/// picture, the regions panel is on screen.
+#[test]
+fn at_1280x720_the_lens_is_on_screen() {
+    let Some(img) = screenshot(
+        "1280x720x24",
+        &["open", "--window-size", "1280x720"],
+        "window-1280x720.png",
+        1,
+    ) else {
+        return;
+    };
+    assert_eq!(img.dimensions(), (1280, 720));
+    // The strip (upper central band) and the lens (lower central band) both show pictures.
+    let strip = spread(&img, (0.2, 0.6), (0.08, 0.3));
+    let lens = spread(&img, (0.25, 0.55), (0.55, 0.8));
+    assert!(strip > 12.0, "strip flat (sd {strip:.1})");
+    assert!(lens > 12.0, "lens flat or off screen (sd {lens:.1})");
 }

@@ -424,3 +424,72 @@ fn ticks_are_round_and_inside_the_range() {
     assert_eq!(render::format_tick(1000.0, 1.0), "1000");
     assert_eq!(render::format_tick(2.0e6, 1e6), "2.0e6");
 }
+
+/// CIE 1976 L*a*b* of an sRGB colour in [0, 1] (sRGB decoding per IEC 61966-2-1, D65 white,
+/// the handbook formulas).
+fn lab(c: [f64; 3]) -> [f64; 3] {
+    let lin = |u: f64| {
+        if u > 0.04045 {
+            ((u + 0.055) / 1.055).powf(2.4)
+        } else {
+            u / 12.92
+        }
+    };
+    let [r, g, b] = c.map(lin);
+    let x = (0.4124 * r + 0.3576 * g + 0.1805 * b) / 0.95047;
+    let y = 0.2126 * r + 0.7152 * g + 0.0722 * b;
+    let z = (0.0193 * r + 0.1192 * g + 0.9505 * b) / 1.08883;
+    let f = |t: f64| {
+        if t > 0.008856 {
+            t.cbrt()
+        } else {
+            7.787 * t + 16.0 / 116.0
+        }
+    };
+    let (fx, fy, fz) = (f(x), f(y), f(z));
+    [116.0 * fy - 16.0, 500.0 * (fx - fy), 200.0 * (fy - fz)]
+}
+
+fn delta_e(a: [f64; 3], b: [f64; 3]) -> f64 {
+    let (a, b) = (lab(a), lab(b));
+    ((a[0] - b[0]).powi(2) + (a[1] - b[1]).powi(2) + (a[2] - b[2]).powi(2)).sqrt()
+}
+
+fn unit(c: [u8; 3]) -> [f64; 3] {
+    c.map(|v| v as f64 / 255.0)
+}
+
+/// Label, pin, grid and padding colours stay apart from each other (25 Delta E, CIE 1976) and
+/// the ones drawn over maps from every entry of every colour map offered (30 Delta E; tables
+/// from matplotlib 3.11.2).
+#[test]
+fn overlay_and_label_colours_stay_apart_from_each_other_and_the_maps() {
+    let mut named: Vec<(String, [u8; 3])> = mullion::annotation::PALETTE
+        .iter()
+        .zip(mullion::annotation::PALETTE_NAMES)
+        .map(|(c, n)| (format!("label {n}"), *c))
+        .collect();
+    named.push(("pin".into(), mullion::annotation::PIN_COLOUR));
+    named.push(("regular grid".into(), REGULAR_GRID));
+    named.push(("shifted grid".into(), SHIFTED_GRID));
+    let over_maps = named.clone();
+    named.push(("padding hatch".into(), PADDING_HATCH));
+    named.push(("padding fill".into(), PADDING_FILL));
+    for (i, (na, a)) in named.iter().enumerate() {
+        for (nb, b) in &named[i + 1..] {
+            let d = delta_e(unit(*a), unit(*b));
+            assert!(d >= 25.0, "{na} and {nb} are only {d:.1} apart");
+        }
+    }
+    for cm in Colormap::ALL {
+        for entry in cm.table() {
+            let e = entry.map(|v| v as f64);
+            for (n, c) in &over_maps {
+                let d = delta_e(unit(*c), e);
+                assert!(d >= 30.0, "{n} is {d:.1} from an entry of {}", cm.name());
+            }
+        }
+    }
+    // The check can fail: the old shifted-grid cyan sat close to a label blue.
+    assert!(delta_e(unit([0, 220, 255]), unit([40, 200, 255])) < 25.0);
+}

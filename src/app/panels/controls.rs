@@ -191,6 +191,30 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
         );
     });
     ui.small("pair k draws block 2k (regular) and 2k+1 (shifted)");
+    // Say which blocks each stage really draws: stages with fewer blocks fall back.
+    if let Some(shown) = &bench.shown {
+        let overlays = s.overlays();
+        for st in &shown.outputs.geometry.stages {
+            let (regular, shifted) = overlays.blocks(st);
+            let first = (overlays.block.min(st.blocks.len().saturating_sub(1)) / 2) * 2;
+            let text = match (regular, shifted) {
+                (Some(_), Some(_)) => {
+                    format!("stage {}: blocks {first} and {}", st.index, first + 1)
+                }
+                (Some(_), None) => format!(
+                    "stage {}: block {first} only (no shifted block: windows clamped or one block)",
+                    st.index
+                ),
+                _ => format!("stage {}: no block", st.index),
+            };
+            let fell_back = first != overlays.block;
+            ui.small(if fell_back {
+                format!("{text} (has {} blocks)", st.blocks.len())
+            } else {
+                text
+            });
+        }
+    }
 
     ui.separator();
     ui.heading("Lens");

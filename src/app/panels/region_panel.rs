@@ -67,6 +67,12 @@ impl RegionPanel {
             }
         });
         ui.small("(applies from the next image opened)");
+        let mut show = bench.settings.show_regions;
+        if ui.checkbox(&mut show, "Show region outlines").changed() {
+            let mut s = bench.settings.clone();
+            s.show_regions = show;
+            out.push(Action::SetSettings(Box::new(s)));
+        }
         ui.horizontal(|ui| {
             if ui
                 .add_enabled(bench.regions.edits.can_undo(), egui::Button::new("Undo"))

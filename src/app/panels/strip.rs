@@ -8,10 +8,65 @@ use crate::app::canvas::{CanvasTools, Placement, Tool};
 use crate::app::overlay::paint_overlays;
 use crate::app::state::Workbench;
 use crate::render;
-use egui::{Sense, Vec2};
+use crate::render::Overlays;
+use egui::{Color32, Pos2, Sense, Stroke, Vec2};
 
-#[derive(Default)]
-pub struct StageStrip;
+pub struct StageStrip {
+    /// The height the strip may take (the window sets it each frame).
+    pub max_height: f32,
+}
+
+impl Default for StageStrip {
+    fn default() -> Self {
+        StageStrip { max_height: 520.0 }
+    }
+}
+
+/// The key of what is drawn over the pictures: each grid on screen with its block, and the
+/// padding hatch, in their colours.
+fn grid_key(ui: &mut egui::Ui, overlays: &Overlays, bench: &Workbench) {
+    let swatch = |ui: &mut egui::Ui, c: [u8; 3], hatch: bool| {
+        let (r, painter) = ui.allocate_painter(Vec2::new(22.0, 12.0), Sense::hover());
+        let rect = r.rect;
+        let colour = Color32::from_rgb(c[0], c[1], c[2]);
+        painter.rect_filled(rect, 0.0, Color32::from_gray(60));
+        if hatch {
+            for k in 0..4 {
+                let x = rect.min.x + k as f32 * 6.0;
+                painter.line_segment(
+                    [Pos2::new(x, rect.max.y), Pos2::new(x + 12.0, rect.min.y)],
+                    Stroke::new(1.5, colour),
+                );
+            }
+        } else {
+            painter.line_segment(
+                [rect.left_center(), rect.right_center()],
+                Stroke::new(2.0, colour),
+            );
+        }
+    };
+    let pair = (overlays.block / 2) * 2;
+    ui.horizontal_wrapped(|ui| {
+        if overlays.regular_grid {
+            swatch(ui, render::REGULAR_GRID, false);
+            ui.small(format!("regular windows (block {pair})"));
+        }
+        if overlays.shifted_grid {
+            swatch(ui, render::SHIFTED_GRID, false);
+            ui.small(format!(
+                "shifted windows and mask regions (block {})",
+                pair + 1
+            ));
+        }
+        if overlays.padding {
+            swatch(ui, render::PADDING_HATCH, true);
+            ui.small("padding (outside the image)");
+        }
+        if !bench.settings.show_regions {
+            ui.small("region outlines hidden");
+        }
+    });
+}
 
 /// What the central area says when there are no pictures to show.
 pub fn empty_reason(bench: &Workbench) -> String {
@@ -33,10 +88,18 @@ pub fn empty_reason(bench: &Workbench) -> String {
     "Open an image (or a folder) and a checkpoint — or drop them here.".into()
 }
 
-fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>) {
+/// The colour bar's title and its range: what the colours mean, for which stage, on which
+/// scale.
+fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>, label: &str, shared: bool) {
     let Some(st) = st else { return };
     match (&st.range, &st.explained) {
         (Some(r), _) => {
+            let scale = if shared {
+                "scale shared by all stages"
+            } else {
+                "scale of this stage"
+            };
+            ui.small(format!("{label}, stage {}: {scale}", st.stage));
             ui.small(format!(
                 "{:.3} … {:.3}{}",
                 r.lo,
@@ -45,6 +108,10 @@ fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>) {
             ));
         }
         (None, Some(e)) => {
+            ui.small(format!(
+                "stage {}: relative colours (min-max per component)",
+                st.stage
+            ));
             let pct: Vec<String> = e.iter().map(|v| format!("{:.0}%", v * 100.0)).collect();
             ui.small(format!("RGB = PC1..3 ({})", pct.join(", ")));
         }
@@ -72,6 +139,7 @@ impl StageStrip {
         let (sx, sy) = maps.image_to_input();
         let to_image = (1.0 / sx, 1.0 / sy);
         ui.label(egui::RichText::new(format!("Stage strip — {}", maps.map_label)).strong());
+        grid_key(ui, &overlays, bench);
         let n = tex.strip.len() + 1;
         let avail = ui.available_width();
         let per_row = ((avail / 190.0).floor() as usize).clamp(1, n);
@@ -86,7 +154,8 @@ impl StageStrip {
             .iter()
             .map(|c| c.1 / c.0 * cell_w)
             .fold(0.0, f32::max)
-            .min(240.0);
+            .min(240.0)
+            .min((self.max_height - 90.0).max(60.0));
         egui::Grid::new("strip").spacing([8.0, 4.0]).show(ui, |ui| {
             for (idx, &canvas_px) in canvases.iter().enumerate().take(n) {
                 let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
@@ -142,7 +211,12 @@ impl StageStrip {
                             let w = size.x.min(240.0);
                             ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
                         }
-                        legend_text(ui, maps.stages.get(idx - 1));
+                        legend_text(
+                            ui,
+                            maps.stages.get(idx - 1),
+                            &maps.map_label,
+                            maps.key.spec.shared_across_stages,
+                        );
                     }
                 });
                 if (idx + 1) % per_row == 0 {
