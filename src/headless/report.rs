@@ -2,10 +2,13 @@
 //! region, how strongly each stage responds inside it compared with the rest of the image.
 //!
 //! Images go one at a time (one forward pass in memory). Each finished image leaves a small
-//! record in `OUT/.done/`, keyed by everything its numbers depend on (checkpoint, settings,
-//! image and sidecar), so a rerun after an interruption or after adding images only computes
-//! what is new or changed. `regions.csv` and `summary.json` are rewritten whole at the end of
-//! every run, through temporary files and renames.
+//! record in `OUT/.done/`, keyed by everything its numbers depend on (the BLAKE3 content hashes
+//! of the checkpoint, the configuration file, the image and the sidecar, every option that
+//! changes a number, and Mullion's version), so a rerun after an interruption or after adding
+//! images only computes what is new or changed, and a file replaced by another of the same
+//! size and time stamp is computed again. `regions.csv` and `summary.json` are rewritten whole
+//! at the end of every run, through temporary files and renames. A run holds an exclusive lock
+//! on `OUT` (see [`crate::io::lock_folder`]); a second run on the same folder is refused.
 
 use crate::analysis::{
     prepare_stages, region_stats, Colormap, Map, MapKind, PreparedStage, RegionStats, ScaleSpec,
@@ -14,7 +17,7 @@ use crate::analysis::{
 use crate::annotation::{self, Sidecar};
 use crate::engine::{Session, SessionOptions};
 use crate::error::{Error, Result};
-use crate::io::{file_name, list_images, write_text_atomic};
+use crate::io::{file_name, hash_bytes, list_images, write_text_atomic, ContentHashes};
 use crate::render::{self, FigureSpec, Overlays};
 use indicatif::{ProgressBar, ProgressStyle};
 use serde::{Deserialize, Serialize};
@@ -134,40 +137,18 @@ pub struct ReportOutcome {
     pub rows: usize,
 }
 
-/// Size and modification time of a file, to notice when it changed.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-struct FileStamp {
-    path: String,
-    len: u64,
-    modified_ns: Option<u128>,
-}
-
-impl FileStamp {
-    fn of(path: &Path) -> Result<Self> {
-        let m = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
-        let abs = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_path_buf());
-        Ok(FileStamp {
-            path: abs.to_string_lossy().into_owned(),
-            len: m.len(),
-            modified_ns: m
-                .modified()
-                .ok()
-                .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
-                .map(|d| d.as_nanos()),
-        })
-    }
-}
-
-/// Everything one image's numbers depend on.
+/// Everything one image's numbers depend on. Files enter by their content (BLAKE3), never by
+/// their time stamp or path, so a replaced file is noticed and a moved folder is not.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 struct Inputs {
+    /// The Mullion version that computed the rows (a new one may compute them differently).
+    mullion: String,
     map: String,
-    weights: FileStamp,
-    config: Option<FileStamp>,
+    weights: String,
+    config: Option<String>,
     semantics: String,
     normalisation: String,
-    image: FileStamp,
-    /// FNV-1a of the sidecar's bytes; the content matters, not its time stamp.
+    image: String,
     sidecar: String,
 }
 
@@ -179,17 +160,6 @@ struct Record {
     /// The image's rows as CSV text with a header: CSV keeps every f64 exactly (shortest
     /// round-trip digits, read back with the standard parser).
     csv: String,
-}
-
-/// 64-bit FNV-1a, a stable content hash (the standard library's hasher may change between
-/// releases, which would needlessly invalidate every record).
-fn fnv1a(bytes: &[u8]) -> String {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in bytes {
-        h ^= b as u64;
-        h = h.wrapping_mul(0x0100_0000_01b3);
-    }
-    format!("{h:016x}")
 }
 
 fn rows_to_csv(rows: &[ReportRow]) -> Result<String> {
@@ -306,14 +276,16 @@ struct Context<'a> {
     session: Session,
     done_dir: PathBuf,
     figures_dir: Option<PathBuf>,
-    weights: FileStamp,
-    config: Option<FileStamp>,
+    hashes: ContentHashes,
+    weights: String,
+    config: Option<String>,
 }
 
 impl Context<'_> {
     fn inputs(&self, image: &Path, sidecar_bytes: &[u8]) -> Result<Inputs> {
         let s = &self.session;
         Ok(Inputs {
+            mullion: env!("CARGO_PKG_VERSION").to_string(),
             map: self.args.map.id(),
             weights: self.weights.clone(),
             config: self.config.clone(),
@@ -323,8 +295,8 @@ impl Context<'_> {
                 s.semantics.small_stage.name()
             ),
             normalisation: format!("mean {:?} std {:?}", s.norm.mean, s.norm.std),
-            image: FileStamp::of(image)?,
-            sidecar: fnv1a(sidecar_bytes),
+            image: self.hashes.hash(image)?,
+            sidecar: hash_bytes(sidecar_bytes),
         })
     }
 
@@ -336,8 +308,9 @@ impl Context<'_> {
             .figures_dir
             .as_ref()
             .map(|d| d.join(format!("{name}.figure.png")));
-        // A sidecar that is there but unreadable is handled (and moved aside) by the loader.
-        let bytes = std::fs::read(&sidecar_path).ok();
+        // A sidecar that is there but unreadable is handled (and moved aside) by the loader;
+        // one that is not a regular file (a FIFO would block the read) fails here, untouched.
+        let bytes = annotation::read_bytes(&sidecar_path)?;
         if let (false, Some(b)) = (self.args.force, &bytes) {
             let inputs = self.inputs(image, b)?;
             let figure_ok = figure_path.as_ref().is_none_or(|p| p.is_file());
@@ -461,6 +434,21 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             ),
         ));
     }
+    let csv_path = args.out.join(CSV_NAME);
+    let summary_path = args.out.join(SUMMARY_NAME);
+    let mut inputs = vec![("--weights", args.session.weights.as_path())];
+    if let Some(c) = &args.session.config {
+        inputs.push(("--config", c.as_path()));
+    }
+    crate::io::check_outputs(
+        &inputs,
+        &[
+            ("--out", csv_path.as_path()),
+            ("--out", summary_path.as_path()),
+        ],
+    )?;
+    // Held until the run returns: a second run on this folder is refused, not interleaved.
+    let _lock = crate::io::lock_folder(&args.out)?;
     let done_dir = args.out.join(DONE_DIR);
     std::fs::create_dir_all(&done_dir).map_err(|e| Error::io(&done_dir, e))?;
     let figures_dir = args.figures.then(|| args.out.join(FIGURES_DIR));
@@ -468,18 +456,22 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
         std::fs::create_dir_all(d).map_err(|e| Error::io(d, e))?;
     }
     let session = Session::open(&args.session)?;
+    let hashes = ContentHashes::default();
+    let weights = hashes.hash(&args.session.weights)?;
+    let config = args
+        .session
+        .config
+        .as_deref()
+        .map(|c| hashes.hash(c))
+        .transpose()?;
     let ctx = Context {
         args,
         session,
         done_dir,
         figures_dir,
-        weights: FileStamp::of(&args.session.weights)?,
-        config: args
-            .session
-            .config
-            .as_deref()
-            .map(FileStamp::of)
-            .transpose()?,
+        hashes,
+        weights,
+        config,
     };
 
     let pb = progress_bar(images.len());
@@ -490,7 +482,6 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let mut without_regions = Vec::new();
     let mut warnings = Vec::new();
     let mut n_rows = 0usize;
-    let csv_path = args.out.join(CSV_NAME);
     crate::io::write_atomic(&csv_path, |tmp| {
         let csv_err = |e: csv::Error| Error::bad_file(&csv_path, format!("cannot write: {e}"));
         // The header is written by hand so it goes out even when no image gives a row.
@@ -558,7 +549,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let mut text =
         serde_json::to_string_pretty(&summary).map_err(|e| Error::Internal(e.to_string()))?;
     text.push('\n');
-    write_text_atomic(&args.out.join(SUMMARY_NAME), &text)?;
+    write_text_atomic(&summary_path, &text)?;
     Ok(ReportOutcome {
         csv: csv_path,
         summary,
