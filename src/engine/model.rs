@@ -367,6 +367,16 @@ impl Backbone {
             (Some(n), true) => Some(n.forward(outs.last().expect("one stage at least"))?),
             _ => None,
         };
+        for (i, t) in stage_norms.iter().flatten().enumerate() {
+            check_finite(t, || {
+                format!("the output norm of stage {i} produced non-finite values")
+            })?;
+        }
+        if let Some(t) = &final_norm {
+            check_finite(t, || {
+                "the final norm produced non-finite values".to_string()
+            })?;
+        }
         Ok(StageOutputs {
             geometry,
             embed,
