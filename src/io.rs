@@ -280,6 +280,15 @@ pub fn hash_bytes(bytes: &[u8]) -> String {
     blake3::hash(bytes).to_hex().to_string()
 }
 
+/// The first 64 bits of the BLAKE3 hash of `bytes` (little-endian): a stable, well-mixed number
+/// for splitting work deterministically.
+pub fn hash_u64(bytes: &[u8]) -> u64 {
+    let h = blake3::hash(bytes);
+    let mut first = [0u8; 8];
+    first.copy_from_slice(&h.as_bytes()[..8]);
+    u64::from_le_bytes(first)
+}
+
 /// Content hashes of files, each computed once per run: a run that keys several results on one
 /// checkpoint reads it once. Entries are keyed by the canonical path and remembered with the
 /// size, modification time and inode seen when hashing, so a file replaced during the run is

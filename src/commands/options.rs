@@ -182,6 +182,15 @@ pub fn parse_scale(s: &str) -> std::result::Result<f32, String> {
     }
 }
 
+/// A shard `K/N` of a split report: `1 <= K <= N`.
+pub fn parse_shard(s: &str) -> std::result::Result<crate::headless::Shard, String> {
+    let bad = || format!("'{s}': expected K/N with 1 <= K <= N, e.g. 2/8");
+    let (k, n) = s.split_once('/').ok_or_else(bad)?;
+    let k: u32 = k.trim().parse().map_err(|_| bad())?;
+    let n: u32 = n.trim().parse().map_err(|_| bad())?;
+    crate::headless::Shard::new(k, n).map_err(|e| format!("'{s}': {e}"))
+}
+
 /// Largest memory limit accepted, in GB.
 pub const MAX_MEMORY_GB: f64 = 1e6;
 

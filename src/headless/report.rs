@@ -50,6 +50,54 @@ pub struct ReportOptions {
     pub figures: bool,
     /// Recompute every image, even those already done with the same inputs.
     pub force: bool,
+    /// Do only this shard's images, in `OUT/shard-K-of-N/` (see [`Shard`]).
+    pub shard: Option<Shard>,
+}
+
+/// Most shards a report may be split into.
+pub const MAX_SHARDS: u32 = 100_000;
+
+/// One of `count` parts of a folder of images: image `name` belongs to shard `index` (1-based)
+/// when the first 64 bits of the BLAKE3 hash of its path relative to the image folder, modulo
+/// `count`, are `index - 1`. The split depends on nothing but the names, so every machine of an
+/// array job computes the same one.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Shard {
+    pub index: u32,
+    pub count: u32,
+}
+
+impl Shard {
+    /// Shard `index` of `count`: `1 <= index <= count <= MAX_SHARDS`.
+    pub fn new(index: u32, count: u32) -> Result<Shard> {
+        if count == 0 || count > MAX_SHARDS || index == 0 || index > count {
+            return Err(Error::BadArgument(format!(
+                "shard {index}/{count}: expected K/N with 1 <= K <= N <= {MAX_SHARDS}"
+            )));
+        }
+        Ok(Shard { index, count })
+    }
+
+    /// The folder (inside `--out`) this shard writes: `shard-K-of-N`.
+    pub fn dir_name(&self) -> String {
+        format!("shard-{}-of-{}", self.index, self.count)
+    }
+
+    /// Whether the image at `relative` (its path relative to the image folder) is this shard's.
+    pub fn contains(&self, relative: &str) -> bool {
+        crate::io::hash_u64(relative.as_bytes()) % self.count as u64 == (self.index - 1) as u64
+    }
+}
+
+/// What a shard's `summary.json` says about the split and the run's settings, so a merge can
+/// check that its shards belong together.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ShardInfo {
+    pub index: u32,
+    pub count: u32,
+    /// Everything the numbers depend on besides the images: content hashes of the checkpoint
+    /// and configuration file, map, padding semantics, normalisation, Mullion's version.
+    pub settings: String,
 }
 
 impl ReportOptions {
@@ -63,6 +111,15 @@ impl ReportOptions {
             map: std::sync::Arc::new(crate::analysis::TokenNorm),
             figures: false,
             force: false,
+            shard: None,
+        }
+    }
+
+    /// The folder this run writes: `out`, or `out/shard-K-of-N` for a shard.
+    pub fn out_dir(&self) -> PathBuf {
+        match &self.shard {
+            Some(s) => self.out.join(s.dir_name()),
+            None => self.out.clone(),
         }
     }
 }
@@ -122,12 +179,17 @@ pub struct Summary {
     pub without_regions: Vec<String>,
     /// Changes made to sidecars on reading (clipping and the like), prefixed by the image.
     pub warnings: Vec<String>,
+    /// For a shard of a split run (`--shard K/N`): which one, and the settings it ran with.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shard: Option<ShardInfo>,
 }
 
 /// What a run did, for callers and tests.
 #[derive(Clone, Debug, PartialEq)]
 pub struct ReportOutcome {
     pub csv: PathBuf,
+    /// Where `summary.json` went.
+    pub summary_path: PathBuf,
     pub summary: Summary,
     /// Image file names computed in this run, in order.
     pub computed: Vec<String>,
@@ -183,6 +245,14 @@ pub fn read_rows(path: &Path) -> Result<Vec<ReportRow>> {
     csv_to_rows(&text).map_err(|e| Error::bad_file(path, format!("not a region table: {e}")))
 }
 
+/// Read a `summary.json` written by this command.
+pub fn read_summary(path: &Path) -> Result<Summary> {
+    let bytes = crate::io::read_regular(path, 1 << 30)?
+        .ok_or_else(|| Error::bad_file(path, "missing: is this a finished report folder?"))?;
+    serde_json::from_slice(&bytes)
+        .map_err(|e| Error::bad_file(path, format!("not a report summary: {e}")))
+}
+
 /// A record that exists, parses and has the given inputs.
 fn read_record(path: &Path, inputs: &Inputs) -> Option<(Vec<ReportRow>, Vec<String>)> {
     let text = std::fs::read_to_string(path).ok()?;
@@ -222,7 +292,7 @@ impl Welford {
 }
 
 #[derive(Default)]
-struct Group {
+pub struct Group {
     count: usize,
     images: usize,
     last_image: Option<String>,
@@ -231,12 +301,12 @@ struct Group {
     auroc: Welford,
 }
 
-/// Per-(label, stage) accumulators over all rows of the run.
+/// Per-(label, stage) accumulators over all rows of the run, fed image by image.
 #[derive(Default)]
-struct Groups(BTreeMap<(String, usize), Group>);
+pub struct Groups(BTreeMap<(String, usize), Group>);
 
 impl Groups {
-    fn push(&mut self, r: &ReportRow) {
+    pub fn push(&mut self, r: &ReportRow) {
         let g = self.0.entry((r.label.clone(), r.stage)).or_default();
         g.count += 1;
         if g.last_image.as_deref() != Some(r.image.as_str()) {
@@ -248,7 +318,7 @@ impl Groups {
         g.ratio.push(r.ratio);
         g.auroc.push(r.auroc);
     }
-    fn finish(self) -> Vec<GroupSummary> {
+    pub fn finish(self) -> Vec<GroupSummary> {
         self.0
             .into_iter()
             .map(|((label, stage), g)| GroupSummary {
@@ -298,6 +368,22 @@ impl Context<'_> {
             image: self.hashes.hash(image)?,
             sidecar: hash_bytes(sidecar_bytes),
         })
+    }
+
+    /// The settings every image's key shares, in one line (a merge compares shards by it).
+    fn settings(&self) -> String {
+        let s = &self.session;
+        format!(
+            "mullion {} map {} weights {} config {} semantics {}/{} mean {:?} std {:?}",
+            env!("CARGO_PKG_VERSION"),
+            self.args.map.id(),
+            self.weights,
+            self.config.as_deref().unwrap_or("none"),
+            s.semantics.pad_order.name(),
+            s.semantics.small_stage.name(),
+            s.norm.mean,
+            s.norm.std
+        )
     }
 
     fn process(&self, image: &Path) -> Result<Done> {
@@ -424,7 +510,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             return Err(Error::bad_file(d, "--regions: not a folder"));
         }
     }
-    let images = list_images(&args.images)?;
+    let mut images = list_images(&args.images)?;
     if images.is_empty() {
         return Err(Error::bad_file(
             &args.images,
@@ -434,8 +520,13 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             ),
         ));
     }
-    let csv_path = args.out.join(CSV_NAME);
-    let summary_path = args.out.join(SUMMARY_NAME);
+    if let Some(shard) = &args.shard {
+        // An empty shard (more shards than images) is a valid, empty result.
+        images.retain(|p| shard.contains(&file_name(p)));
+    }
+    let out_dir = args.out_dir();
+    let csv_path = out_dir.join(CSV_NAME);
+    let summary_path = out_dir.join(SUMMARY_NAME);
     let mut inputs = vec![("--weights", args.session.weights.as_path())];
     if let Some(c) = &args.session.config {
         inputs.push(("--config", c.as_path()));
@@ -448,10 +539,10 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
         ],
     )?;
     // Held until the run returns: a second run on this folder is refused, not interleaved.
-    let _lock = crate::io::lock_folder(&args.out)?;
-    let done_dir = args.out.join(DONE_DIR);
+    let _lock = crate::io::lock_folder(&out_dir)?;
+    let done_dir = out_dir.join(DONE_DIR);
     std::fs::create_dir_all(&done_dir).map_err(|e| Error::io(&done_dir, e))?;
-    let figures_dir = args.figures.then(|| args.out.join(FIGURES_DIR));
+    let figures_dir = args.figures.then(|| out_dir.join(FIGURES_DIR));
     if let Some(d) = &figures_dir {
         std::fs::create_dir_all(d).map_err(|e| Error::io(d, e))?;
     }
@@ -545,6 +636,11 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
         failed,
         without_regions,
         warnings,
+        shard: args.shard.map(|s| ShardInfo {
+            index: s.index,
+            count: s.count,
+            settings: ctx.settings(),
+        }),
     };
     let mut text =
         serde_json::to_string_pretty(&summary).map_err(|e| Error::Internal(e.to_string()))?;
@@ -552,6 +648,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     write_text_atomic(&summary_path, &text)?;
     Ok(ReportOutcome {
         csv: csv_path,
+        summary_path,
         summary,
         computed,
         reused,

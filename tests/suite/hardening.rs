@@ -1225,3 +1225,117 @@ fn crafted_sidecars_never_panic_and_newer_ones_never_move() {
     assert!(annotation::load(&newer).is_err());
     assert!(newer.exists());
 }
+
+// ---------------------------------------------------------------------------------------------
+// 10. Split runs: shards and their merge
+
+#[test]
+fn three_shards_merged_equal_the_unsplit_run_on_sample_data() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let w = checkpoint(d, "w.safetensors", vec![2, 2, 2], 11);
+    let images = d.join("images");
+    std::fs::create_dir(&images).unwrap();
+    let mut names = Vec::new();
+    for e in std::fs::read_dir(sample_data()).unwrap() {
+        let p = e.unwrap().path();
+        let name = p.file_name().unwrap().to_string_lossy().into_owned();
+        if name.ends_with(".png") || name.ends_with(".regions.json") {
+            std::fs::copy(&p, images.join(&name)).unwrap();
+            if name.ends_with(".png") {
+                names.push(name);
+            }
+        }
+    }
+    assert!(names.len() >= 6, "{names:?}");
+    let run = |out: &Path, extra: &[&str]| {
+        let mut args = vec![
+            "report",
+            "--weights",
+            s(&w),
+            "--images",
+            s(&images),
+            "--out",
+            s(out),
+        ];
+        args.extend_from_slice(extra);
+        let r = mullion_within(&args, Duration::from_secs(300));
+        assert_eq!(r.code, 0, "{args:?}: {}", r.stderr);
+    };
+    let whole = d.join("whole");
+    run(&whole, &[]);
+    let split = d.join("split");
+    let mut counts = Vec::new();
+    for k in 1..=3 {
+        run(&split, &["--shard", &format!("{k}/3")]);
+        let summary = mullion::headless::report::read_summary(
+            &split.join(format!("shard-{k}-of-3")).join("summary.json"),
+        )
+        .unwrap();
+        counts.push(summary.images);
+    }
+    // Every image in exactly one shard, and the split is not degenerate.
+    assert_eq!(counts.iter().sum::<usize>(), names.len(), "{counts:?}");
+    assert!(counts.iter().filter(|&&c| c > 0).count() >= 2, "{counts:?}");
+    let shard_dirs: Vec<PathBuf> = (1..=3)
+        .map(|k| split.join(format!("shard-{k}-of-3")))
+        .collect();
+    let mut args = vec!["merge"];
+    args.extend(shard_dirs.iter().map(|p| s(p)));
+    args.extend(["--out", s(&split)]);
+    let r = mullion(&args);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    for file in ["regions.csv", "summary.json"] {
+        let a = std::fs::read(whole.join(file)).unwrap();
+        let b = std::fs::read(split.join(file)).unwrap();
+        assert!(
+            a == b,
+            "{file} differs between the unsplit run and the merge"
+        );
+    }
+
+    // A merge needs every shard once, of one split.
+    let elsewhere = d.join("elsewhere");
+    let r = mullion(&[
+        "merge",
+        s(&shard_dirs[0]),
+        s(&shard_dirs[1]),
+        "--out",
+        s(&elsewhere),
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("shards 3 of 3 are missing"),
+        "{}",
+        r.stderr
+    );
+    let r = mullion(&[
+        "merge",
+        s(&shard_dirs[0]),
+        s(&shard_dirs[0]),
+        s(&shard_dirs[1]),
+        s(&shard_dirs[2]),
+        "--out",
+        s(&elsewhere),
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("given twice"), "{}", r.stderr);
+    let r = mullion(&["merge", s(&whole), "--out", s(&elsewhere)]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("not a shard folder"), "{}", r.stderr);
+    for bad in ["0/3", "4/3", "1/0", "x/3", "3"] {
+        let r = mullion(&[
+            "report",
+            "--weights",
+            s(&w),
+            "--images",
+            s(&images),
+            "--out",
+            s(&split),
+            "--shard",
+            bad,
+        ]);
+        assert_eq!(r.code, 2, "{bad}: {}", r.stderr);
+        assert!(r.stderr.contains("invalid value"), "{bad}: {}", r.stderr);
+    }
+}
