@@ -298,8 +298,16 @@ pub struct Checkpoint {
     used: RefCell<BTreeSet<String>>,
 }
 
-/// What kind of file this is, from its first bytes.
+/// What kind of file this is, from its first bytes. Anything but a regular file is refused
+/// before it is opened (opening a FIFO would wait for a writer for ever).
 fn sniff(path: &Path) -> Result<&'static str> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if !meta.is_file() {
+        return Err(Error::bad_file(
+            path,
+            "not a regular file (a folder, FIFO or device); a checkpoint is a file",
+        ));
+    }
     let mut head = [0u8; 16];
     let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
     let mut n = 0;

@@ -365,7 +365,7 @@ impl Config {
             ));
         }
         for (i, &h) in self.heads.iter().enumerate() {
-            if h == 0 || h > MAX_HEADS || self.dim(i) % h != 0 {
+            if h == 0 || h > MAX_HEADS || !self.dim(i).is_multiple_of(h) {
                 return Err(format!(
                     "stage {i}: {} channels do not split into {h} heads",
                     self.dim(i)

@@ -703,6 +703,15 @@ fn huge_sizes_from_flags_and_files_are_refused_quickly() {
             r.stderr
         );
     }
+    // A checkpoint that is a FIFO is refused, not opened for ever.
+    let wfifo = d.join("w.fifo");
+    mkfifo(&wfifo);
+    let r = mullion_within(
+        &["summary", "--weights", s(&wfifo), "--image", s(&img)],
+        Duration::from_secs(30),
+    );
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("not a regular file"), "{}", r.stderr);
     // A configuration file that is a FIFO is refused, not read for ever.
     let fifo = d.join("c.fifo");
     mkfifo(&fifo);
