@@ -870,6 +870,9 @@ fn invalid_values_exit_2_from_the_argument_parser() {
         vec!["bench", "--size", "224x0"],
         vec!["bench", "--preset", "huge"],
         vec!["bench", "--runs", "0"],
+        vec!["train-demo", "--batch", "18446744073709551615"],
+        vec!["train-demo", "--steps", "0"],
+        vec!["train-demo", "--minutes", "inf"],
     ] {
         let r = mullion(&args);
         assert_eq!(r.code, 2, "{args:?}: {}", r.stderr);
