@@ -22,6 +22,9 @@ pub enum Error {
     /// The input is valid but beyond what this machine should attempt.
     #[error("{0}")]
     Limit(String),
+    /// A tensor holds NaN or infinite values: the message names where they first appeared.
+    #[error("{0}")]
+    NonFinite(String),
     /// The run was cancelled between two blocks.
     #[error("cancelled")]
     Cancelled,

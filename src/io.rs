@@ -1,14 +1,18 @@
 //! Files, for every layer: atomic writes (temporary file in the same folder, then rename), PNG and
-//! tensor files written that way, the file endings Mullion reads, and listing the images of a
-//! folder.
+//! tensor files written that way, the file endings Mullion reads, listing the images of a
+//! folder, the lock a run holds on its output folder, the checks that an output is neither one
+//! of the run's inputs nor anything but a regular file, bounded reads of small files, and
+//! content hashes (BLAKE3) of the files a cached result depends on.
 //!
 //! Nothing here knows about models, maps or windows; every other module may use it.
 
 use crate::error::{Error, Result};
 use candle_core::Tensor;
 use std::collections::HashMap;
+use std::io::Read;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Mutex;
 
 /// Image file endings Mullion opens (compared without regard to case).
 pub const IMAGE_EXTENSIONS: [&str; 7] = ["png", "jpg", "jpeg", "webp", "tif", "tiff", "bmp"];
@@ -73,9 +77,275 @@ fn temp_path(path: &Path) -> Result<PathBuf> {
     )))
 }
 
+/// What kind of thing a file system entry is, in words, for messages.
+fn kind_of(meta: &std::fs::Metadata) -> &'static str {
+    use std::os::unix::fs::FileTypeExt;
+    let t = meta.file_type();
+    if t.is_symlink() {
+        "a symbolic link"
+    } else if t.is_dir() {
+        "a folder"
+    } else if t.is_fifo() {
+        "a FIFO (named pipe)"
+    } else if t.is_char_device() || t.is_block_device() {
+        "a device node"
+    } else if t.is_socket() {
+        "a socket"
+    } else if t.is_file() {
+        "a regular file"
+    } else {
+        "not a regular file"
+    }
+}
+
+/// Refuse to write over `path` unless it is absent or a regular file: renaming over a symbolic
+/// link, a FIFO or a device node would silently replace it with a regular file.
+pub fn check_writable_target(path: &Path) -> Result<()> {
+    match std::fs::symlink_metadata(path) {
+        Ok(m) if m.file_type().is_file() => Ok(()),
+        Ok(m) => Err(Error::BadArgument(format!(
+            "{}: is {}; Mullion writes its outputs only as new or regular files, so it is left \
+             untouched (give another output name)",
+            path.display(),
+            kind_of(&m)
+        ))),
+        Err(_) => Ok(()),
+    }
+}
+
+/// Identity of a file system entry: its canonical path, and (device, inode) when it exists, so
+/// two names for one file (hard links, `a/../a`) are seen as the same.
+#[derive(Clone, Debug, PartialEq, Eq)]
+struct FileId {
+    canonical: PathBuf,
+    inode: Option<(u64, u64)>,
+}
+
+impl FileId {
+    fn of(path: &Path) -> FileId {
+        use std::os::unix::fs::MetadataExt;
+        let inode = std::fs::metadata(path).ok().map(|m| (m.dev(), m.ino()));
+        let canonical = std::fs::canonicalize(path).unwrap_or_else(|_| {
+            // Not there yet: the canonical folder it would land in, and its name.
+            let dir = std::fs::canonicalize(parent_dir(path))
+                .unwrap_or_else(|_| parent_dir(path).to_path_buf());
+            match path.file_name() {
+                Some(n) => dir.join(n),
+                None => dir,
+            }
+        });
+        FileId { canonical, inode }
+    }
+
+    fn same(&self, other: &FileId) -> bool {
+        self.canonical == other.canonical
+            || matches!((self.inode, other.inode), (Some(a), Some(b)) if a == b)
+    }
+}
+
+/// Check a run's outputs before it starts: no output may be one of its inputs or another of its
+/// outputs (compared by canonical path and by inode), and each must be absent or a regular
+/// file. `inputs` and `outputs` pair the argument's name with its path. A clash is bad usage.
+pub fn check_outputs(inputs: &[(&str, &Path)], outputs: &[(&str, &Path)]) -> Result<()> {
+    let ins: Vec<(&str, &Path, FileId)> = inputs
+        .iter()
+        .map(|(a, p)| (*a, *p, FileId::of(p)))
+        .collect();
+    let mut seen: Vec<(&str, &Path, FileId)> = Vec::new();
+    for (arg, path) in outputs {
+        check_writable_target(path)?;
+        let id = FileId::of(path);
+        if let Some((iarg, ipath, _)) = ins.iter().find(|i| i.2.same(&id)) {
+            return Err(Error::BadArgument(format!(
+                "{arg} {}: is the same file as {iarg} {}; writing it would destroy an input \
+                 of this run (give another output name)",
+                path.display(),
+                ipath.display()
+            )));
+        }
+        if let Some((oarg, opath, _)) = seen.iter().find(|o| o.2.same(&id)) {
+            return Err(Error::BadArgument(format!(
+                "{arg} {}: is the same file as {oarg} {}; one output would overwrite the other \
+                 (give them different names)",
+                path.display(),
+                opath.display()
+            )));
+        }
+        seen.push((arg, path, id));
+    }
+    Ok(())
+}
+
+/// Name of the lock file a run keeps in the output folder it writes.
+pub const LOCK_NAME: &str = ".mullion.lock";
+
+/// An exclusive operating-system lock on an output folder, held until dropped (or until the
+/// process ends, however it ends: the kernel releases it, so a killed run leaves no stale lock).
+#[derive(Debug)]
+pub struct FolderLock {
+    _file: std::fs::File,
+    pub path: PathBuf,
+}
+
+/// Create `dir` if needed and take the exclusive lock on it, or fail at once with a message
+/// naming the folder when another run holds it. The lock file stays in the folder (removing it
+/// would let a third run lock a fresh file while the second still holds the old one).
+pub fn lock_folder(dir: &Path) -> Result<FolderLock> {
+    std::fs::create_dir_all(dir).map_err(|e| Error::io(dir, e))?;
+    let path = dir.join(LOCK_NAME);
+    check_writable_target(&path)?;
+    let file = std::fs::OpenOptions::new()
+        .read(true)
+        .write(true)
+        .create(true)
+        .truncate(false)
+        .open(&path)
+        .map_err(|e| Error::io(&path, e))?;
+    match file.try_lock() {
+        Ok(()) => Ok(FolderLock { _file: file, path }),
+        Err(std::fs::TryLockError::WouldBlock) => Err(Error::bad_file(
+            dir,
+            format!(
+                "another Mullion run is writing to this folder (it holds the lock {}); wait \
+                 for it to finish or choose another output folder",
+                path.display()
+            ),
+        )),
+        Err(std::fs::TryLockError::Error(e)) => Err(Error::bad_file(
+            &path,
+            format!("cannot lock the output folder: {e}"),
+        )),
+    }
+}
+
+/// Read a small file whole, refusing anything that is not a regular file (a FIFO would block
+/// the read for ever, a device could stream without end) or is larger than `max_bytes`.
+/// `Ok(None)` when there is no file.
+pub fn read_regular(path: &Path, max_bytes: u64) -> Result<Option<Vec<u8>>> {
+    let meta = match std::fs::metadata(path) {
+        Ok(m) => m,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::io(path, e)),
+    };
+    if !meta.is_file() {
+        return Err(Error::bad_file(
+            path,
+            format!(
+                "is {}, not a regular file; it is left untouched",
+                kind_of(&meta)
+            ),
+        ));
+    }
+    if meta.len() > max_bytes {
+        return Err(Error::bad_file(
+            path,
+            format!(
+                "is {} bytes, more than the {max_bytes} bytes Mullion reads for this kind of file",
+                meta.len()
+            ),
+        ));
+    }
+    let file = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    // The bound holds even if the file grows between the check and the read.
+    file.take(max_bytes + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| Error::io(path, e))?;
+    if bytes.len() as u64 > max_bytes {
+        return Err(Error::bad_file(
+            path,
+            format!("grew past {max_bytes} bytes while being read"),
+        ));
+    }
+    Ok(Some(bytes))
+}
+
+/// BLAKE3 of a file's bytes as 64 hex digits. Refuses what is not a regular file.
+pub fn hash_file(path: &Path) -> Result<String> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if !meta.is_file() {
+        return Err(Error::bad_file(
+            path,
+            format!("is {}, not a regular file", kind_of(&meta)),
+        ));
+    }
+    let file = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
+    let mut hasher = blake3::Hasher::new();
+    hasher.update_reader(file).map_err(|e| Error::io(path, e))?;
+    Ok(hasher.finalize().to_hex().to_string())
+}
+
+/// BLAKE3 of bytes in memory, as 64 hex digits.
+pub fn hash_bytes(bytes: &[u8]) -> String {
+    blake3::hash(bytes).to_hex().to_string()
+}
+
+/// The first 64 bits of the BLAKE3 hash of `bytes` (little-endian): a stable, well-mixed number
+/// for splitting work deterministically.
+pub fn hash_u64(bytes: &[u8]) -> u64 {
+    let h = blake3::hash(bytes);
+    let mut first = [0u8; 8];
+    first.copy_from_slice(&h.as_bytes()[..8]);
+    u64::from_le_bytes(first)
+}
+
+/// Content hashes of files, each computed once per run: a run that keys several results on one
+/// checkpoint reads it once. Entries are keyed by the canonical path and remembered with the
+/// size, modification time and inode seen when hashing, so a file replaced during the run is
+/// hashed again. Nothing is kept between runs: a new run always reads the bytes, so a file
+/// replaced by another of the same size and time stamp is never mistaken for the old one.
+#[derive(Default)]
+pub struct ContentHashes {
+    seen: Mutex<HashMap<PathBuf, (Stamp, String)>>,
+}
+
+/// What is compared to notice a file changed during one run.
+#[derive(Clone, Debug, PartialEq, Eq)]
+struct Stamp {
+    len: u64,
+    modified: Option<std::time::SystemTime>,
+    changed: (i64, i64),
+    inode: (u64, u64),
+}
+
+impl Stamp {
+    fn of(path: &Path) -> Result<Stamp> {
+        use std::os::unix::fs::MetadataExt;
+        let m = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+        Ok(Stamp {
+            len: m.len(),
+            modified: m.modified().ok(),
+            changed: (m.ctime(), m.ctime_nsec()),
+            inode: (m.dev(), m.ino()),
+        })
+    }
+}
+
+impl ContentHashes {
+    /// The BLAKE3 hex digest of the file at `path`.
+    pub fn hash(&self, path: &Path) -> Result<String> {
+        let key = std::fs::canonicalize(path).map_err(|e| Error::io(path, e))?;
+        let stamp = Stamp::of(&key)?;
+        if let Ok(seen) = self.seen.lock() {
+            if let Some((s, h)) = seen.get(&key) {
+                if *s == stamp {
+                    return Ok(h.clone());
+                }
+            }
+        }
+        let h = hash_file(&key)?;
+        if let Ok(mut seen) = self.seen.lock() {
+            seen.insert(key, (stamp, h.clone()));
+        }
+        Ok(h)
+    }
+}
+
 /// Run `write` on a temporary path next to `path`, then rename it over `path`, so a reader never
-/// sees a half-written file. The temporary file is removed on failure.
+/// sees a half-written file. The temporary file is removed on failure. A target that exists and
+/// is not a regular file (a symbolic link, FIFO, device node or folder) is refused.
 pub fn write_atomic(path: &Path, write: impl FnOnce(&Path) -> Result<()>) -> Result<()> {
+    check_writable_target(path)?;
     let dir = parent_dir(path);
     if !dir.is_dir() {
         return Err(Error::bad_file(
@@ -85,12 +355,16 @@ pub fn write_atomic(path: &Path, write: impl FnOnce(&Path) -> Result<()>) -> Res
     }
     let tmp = temp_path(path)?;
     // Probe first so an unwritable folder gives a plain message naming the target.
-    std::fs::File::create(&tmp).map_err(|e| {
-        Error::bad_file(
-            path,
-            format!("cannot write in the folder {}: {e}", dir.display()),
-        )
-    })?;
+    std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(&tmp)
+        .map_err(|e| {
+            Error::bad_file(
+                path,
+                format!("cannot write in the folder {}: {e}", dir.display()),
+            )
+        })?;
     let result =
         write(&tmp).and_then(|()| std::fs::rename(&tmp, path).map_err(|e| Error::io(path, e)));
     if result.is_err() {

@@ -89,10 +89,15 @@ pub fn stage_stats(map_id: &str, maps: &[Map], geometry: &Geometry) -> Result<Ve
         .collect()
 }
 
+/// The statistics as JSON text: an array, one object per stage, ending in a newline.
+pub fn stats_json(stats: &[StageStats]) -> Result<String> {
+    let text = serde_json::to_string_pretty(stats).map_err(|e| Error::Internal(e.to_string()))?;
+    Ok(format!("{text}\n"))
+}
+
 /// Write the statistics as a JSON array, one object per stage.
 pub fn write_stats_json(stats: &[StageStats], path: &Path) -> Result<()> {
-    let text = serde_json::to_string_pretty(stats).map_err(|e| Error::Internal(e.to_string()))?;
-    crate::io::write_text_atomic(path, &format!("{text}\n"))
+    crate::io::write_text_atomic(path, &stats_json(stats)?)
 }
 
 /// The statistics as CSV text: a header row, then one row per stage.

@@ -12,6 +12,6 @@ pub use history::Edits;
 pub use palette::{colour_name, PALETTE, PALETTE_NAMES, PIN_COLOUR};
 pub use shape::{clip_ring, ring_crosses_itself, shoelace, Rect, Shape};
 pub use sidecar::{
-    load, load_with_warnings, move_aside, save, sidecar_path, to_json, validate, LabelDef, Pin,
-    Region, Sidecar, SCHEMA, SIDECAR_SUFFIX, VERSION,
+    load, load_with_warnings, move_aside, read_bytes, save, sidecar_path, to_json, validate,
+    LabelDef, Pin, Region, Sidecar, MAX_SIDECAR_BYTES, SCHEMA, SIDECAR_SUFFIX, VERSION,
 };

@@ -7,7 +7,10 @@
 //! integers.
 //!
 //! A sidecar that cannot be read is never overwritten: [`load`] moves it aside (byte for byte) and
-//! says where, so the next save starts a fresh file without destroying the user's work.
+//! says where, so the next save starts a fresh file without destroying the user's work. Two kinds
+//! are left where they are instead: a sidecar of a newer schema version (a newer Mullion reads
+//! it; [`save`] refuses to write over it) and anything that is not a regular file (a FIFO would
+//! block the read, a device is not ours to move).
 
 use super::palette::PALETTE;
 use super::shape::{ring_crosses_itself, Rect, Shape};
@@ -19,6 +22,9 @@ use std::path::{Path, PathBuf};
 pub const SCHEMA: &str = "mullion-regions";
 /// Version of the sidecar schema this build reads and writes.
 pub const VERSION: u32 = 1;
+/// Largest sidecar Mullion reads, in bytes (one with a thousand detailed polygons is well under
+/// a megabyte).
+pub const MAX_SIDECAR_BYTES: u64 = 16 << 20;
 /// Suffix appended to the image's file name to name its sidecar.
 pub const SIDECAR_SUFFIX: &str = ".regions.json";
 
@@ -296,58 +302,93 @@ pub fn move_aside(path: &Path) -> Result<PathBuf> {
     ))
 }
 
-/// Why the bytes of a sidecar are not a sidecar this build can use, if they are not.
-fn parse(bytes: &[u8]) -> std::result::Result<Sidecar, String> {
-    let text = std::str::from_utf8(bytes).map_err(|e| format!("not UTF-8 text: {e}"))?;
+/// Why the bytes of a sidecar are not a sidecar this build can use.
+enum Unusable {
+    /// Written by a newer Mullion: left in place, never moved or overwritten.
+    Newer(String),
+    /// Broken or foreign: moved aside.
+    Broken(String),
+}
+
+/// The schema version a sidecar's bytes declare, when they are a JSON object of our schema.
+fn declared_version(bytes: &[u8]) -> Option<u64> {
+    let value: serde_json::Value = serde_json::from_slice(bytes).ok()?;
+    let obj = value.as_object()?;
+    (obj.get("schema")?.as_str()? == SCHEMA).then_some(())?;
+    obj.get("version")?.as_u64()
+}
+
+/// The sidecar the bytes hold, or why they cannot be used.
+fn parse(bytes: &[u8]) -> std::result::Result<Sidecar, Unusable> {
+    use Unusable::Broken;
+    let text = std::str::from_utf8(bytes).map_err(|e| Broken(format!("not UTF-8 text: {e}")))?;
     let value: serde_json::Value =
-        serde_json::from_str(text).map_err(|e| format!("not valid JSON: {e}"))?;
+        serde_json::from_str(text).map_err(|e| Broken(format!("not valid JSON: {e}")))?;
     let obj = value
         .as_object()
-        .ok_or("expected a JSON object at the top level")?;
+        .ok_or_else(|| Broken("expected a JSON object at the top level".into()))?;
     match obj.get("schema").and_then(|v| v.as_str()) {
         Some(SCHEMA) => {}
-        Some(other) => return Err(format!("schema is '{other}', expected '{SCHEMA}'")),
-        None => return Err(format!("no \"schema\": \"{SCHEMA}\" field")),
+        Some(other) => return Err(Broken(format!("schema is '{other}', expected '{SCHEMA}'"))),
+        None => return Err(Broken(format!("no \"schema\": \"{SCHEMA}\" field"))),
     }
     match obj.get("version").and_then(|v| v.as_u64()) {
         Some(v) if v == VERSION as u64 => {}
         Some(v) if v > VERSION as u64 => {
-            return Err(format!(
-                "schema version {v} is newer than this build reads (version {VERSION})"
-            ))
+            return Err(Unusable::Newer(format!(
+                "schema version {v} is newer than this build reads (version {VERSION}); it was \
+                 written by a newer Mullion, so it is skipped and left in place unchanged"
+            )))
         }
-        Some(v) => return Err(format!("unknown schema version {v} (expected {VERSION})")),
-        None => return Err("no whole-number \"version\" field".into()),
+        Some(v) => {
+            return Err(Broken(format!(
+                "unknown schema version {v} (expected {VERSION})"
+            )))
+        }
+        None => return Err(Broken("no whole-number \"version\" field".into())),
     }
-    let sc: Sidecar = serde_json::from_value(value).map_err(|e| format!("{e}"))?;
+    let sc: Sidecar = serde_json::from_value(value).map_err(|e| Broken(format!("{e}")))?;
     if sc.width == 0 || sc.height == 0 {
-        return Err(format!(
+        return Err(Broken(format!(
             "image size {}x{} has a zero side",
             sc.width, sc.height
-        ));
+        )));
     }
     Ok(sc)
+}
+
+/// The bytes of the sidecar at `path`; `None` when there is none. Anything but a regular file
+/// (a folder, a FIFO, a device) or a file beyond [`MAX_SIDECAR_BYTES`] is an error naming it,
+/// and is left in place.
+pub fn read_bytes(path: &Path) -> Result<Option<Vec<u8>>> {
+    match std::fs::metadata(path) {
+        Ok(m) if m.is_dir() => {
+            // Someone else's folder of that name is not ours to move.
+            return Err(Error::bad_file(path, "is a folder, not a regions file"));
+        }
+        _ => {}
+    }
+    crate::io::read_regular(path, MAX_SIDECAR_BYTES)
 }
 
 /// Read a sidecar, clip it to its image and return it with the warnings [`validate`] gave;
 /// `None` when there is no file. A file that cannot be read or is not a version-1 sidecar is
 /// moved aside (see [`move_aside`]) and the error names the file, the problem and where the
-/// original now is.
+/// original now is. A sidecar of a newer version, and anything that is not a regular file, is
+/// an error that leaves the file where it is.
 pub fn load_with_warnings(path: &Path) -> Result<Option<(Sidecar, Vec<String>)>> {
-    if path.is_dir() {
-        // Someone else's folder of that name is not ours to move.
-        return Err(Error::bad_file(path, "is a folder, not a regions file"));
-    }
-    let problem = match std::fs::read(path) {
-        Ok(bytes) => match parse(&bytes) {
+    let problem = match read_bytes(path) {
+        Ok(None) => return Ok(None),
+        Ok(Some(bytes)) => match parse(&bytes) {
             Ok(mut sc) => {
                 let warnings = validate(&mut sc);
                 return Ok(Some((sc, warnings)));
             }
-            Err(p) => p,
+            Err(Unusable::Newer(p)) => return Err(Error::bad_file(path, format!("not read: {p}"))),
+            Err(Unusable::Broken(p)) => p,
         },
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
-        Err(e) => format!("cannot read: {e}"),
+        // Not a regular file, too large, or unreadable: named, and left where it is.
+        Err(e) => return Err(e),
     };
     let fate = match move_aside(path) {
         Ok(to) => format!(
@@ -375,8 +416,22 @@ pub fn to_json(sc: &Sidecar) -> Result<String> {
 }
 
 /// Save a sidecar atomically: written to a temporary file in the same folder, then renamed over
-/// `path`, so a crash or a full disk leaves the previous file intact.
+/// `path`, so a crash or a full disk leaves the previous file intact. A sidecar of a newer
+/// schema version at `path` is never written over (a newer Mullion's work would be lost), nor
+/// is anything that is not a regular file.
 pub fn save(path: &Path, sc: &Sidecar) -> Result<()> {
+    crate::io::check_writable_target(path)?;
+    if let Ok(Some(bytes)) = crate::io::read_regular(path, MAX_SIDECAR_BYTES) {
+        if let Some(v) = declared_version(&bytes).filter(|&v| v > VERSION as u64) {
+            return Err(Error::bad_file(
+                path,
+                format!(
+                    "holds a version-{v} sidecar written by a newer Mullion; this build \
+                     (version {VERSION}) does not write over it"
+                ),
+            ));
+        }
+    }
     crate::io::write_text_atomic(path, &to_json(sc)?)
 }
 

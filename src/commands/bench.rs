@@ -4,7 +4,7 @@
 use super::options::{parse_size, PresetArg};
 use crate::engine::input::DEFAULT_MEMORY_LIMIT;
 use crate::engine::{Backbone, ForwardOptions, RunControl};
-use crate::error::{Error, Result};
+use crate::error::Result;
 use candle_core::Tensor;
 use clap::Args;
 
@@ -16,9 +16,9 @@ pub struct BenchArgs {
     /// Square input side in pixels (or HxW).
     #[arg(long, default_value = "224", value_parser = parse_size, value_name = "N|HxW")]
     pub size: (usize, usize),
-    /// Timed runs after one warm-up.
-    #[arg(long, default_value_t = 10)]
-    pub runs: usize,
+    /// Timed runs after one warm-up (1 to 10000).
+    #[arg(long, default_value_t = 10, value_parser = clap::value_parser!(u16).range(1..=10000))]
+    pub runs: u16,
 }
 
 /// Peak resident memory of this process in MB (Linux; 0 elsewhere).
@@ -48,9 +48,6 @@ fn median(times: &mut [f64]) -> f64 {
 pub fn run(args: &BenchArgs) -> Result<()> {
     let config = args.preset.config();
     let (h, w) = args.size;
-    if args.runs == 0 {
-        return Err(Error::BadArgument("--runs must be at least 1".into()));
-    }
     let model = Backbone::random(config.clone(), 0)?;
     let semantics = model.default_semantics;
     model.check_memory((h, w), None, DEFAULT_MEMORY_LIMIT)?;
@@ -58,7 +55,7 @@ pub fn run(args: &BenchArgs) -> Result<()> {
     let opts = ForwardOptions::default();
     let ctl = RunControl::default();
     model.forward(&x, &opts, &ctl)?; // warm-up
-    let mut times = Vec::with_capacity(args.runs);
+    let mut times = Vec::with_capacity(args.runs as usize);
     for _ in 0..args.runs {
         let t = std::time::Instant::now();
         model.forward(&x, &opts, &ctl)?;

@@ -28,6 +28,14 @@ pub struct FeaturesArgs {
 }
 
 pub fn run(args: &FeaturesArgs) -> Result<()> {
+    let mut inputs = vec![
+        ("--weights", args.run.weights.as_path()),
+        ("--image", args.image.as_path()),
+    ];
+    if let Some(c) = &args.run.config {
+        inputs.push(("--config", c.as_path()));
+    }
+    crate::io::check_outputs(&inputs, &[("--out", args.out.as_path())])?;
     let session = Session::open(&args.run.session_options()?)?;
     if args.stage_norms && !session.model.has_stage_norms() {
         return Err(Error::bad_file(

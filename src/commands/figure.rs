@@ -1,7 +1,9 @@
 //! `mullion figure`: run a checkpoint on one image and save the stage-by-stage figure (and, when
 //! asked, the per-stage statistics) through the shared renderer.
 
-use super::options::{parse_clip, parse_map, ColormapArg, MapArg, RunArgs};
+use super::options::{
+    parse_clip, parse_map, parse_opacity, parse_scale, ColormapArg, MapArg, RunArgs,
+};
 use crate::analysis::ScaleSpec;
 use crate::error::Result;
 use crate::headless::{save_figure, FigureOptions};
@@ -28,11 +30,12 @@ pub struct FigureArgs {
     #[arg(long, value_enum, default_value = "viridis")]
     pub colormap: ColormapArg,
     /// Map opacity over the image, 0 to 1.
-    #[arg(long, default_value_t = 0.6)]
+    #[arg(long, default_value_t = 0.6, value_parser = parse_opacity)]
     pub opacity: f32,
     /// Block whose windows the grids show: the pair 2k (regular), 2k+1 (shifted) with k = B/2.
-    #[arg(long, default_value_t = 0, value_name = "B")]
-    pub stage_block: usize,
+    #[arg(long, default_value_t = 0, value_name = "B",
+          value_parser = clap::value_parser!(u16).range(0..crate::engine::config::MAX_BLOCKS_PER_STAGE as i64))]
+    pub stage_block: u16,
     /// Draw neither window grid.
     #[arg(long)]
     pub no_grid: bool,
@@ -44,7 +47,7 @@ pub struct FigureArgs {
     pub no_padding: bool,
     /// Output pixels per input pixel [default: 1, or the whole factor that makes the image at
     /// least 256 pixels tall].
-    #[arg(long)]
+    #[arg(long, value_parser = parse_scale)]
     pub scale: Option<f32>,
     /// One colour scale for all stages instead of one per stage.
     #[arg(long)]
@@ -77,7 +80,7 @@ impl FigureArgs {
                 regular_grid: !self.no_grid,
                 shifted_grid: !self.no_grid && !self.no_shifted_grid,
                 padding: !self.no_padding,
-                block: self.stage_block,
+                block: self.stage_block as usize,
                 ..Overlays::default()
             },
             scale: self.scale,

@@ -8,6 +8,7 @@ pub mod bench;
 pub mod features;
 pub mod figure;
 pub mod inspect;
+pub mod merge;
 pub mod options;
 pub mod report;
 pub mod sample_data;
@@ -43,6 +44,8 @@ pub enum Command {
     Figure(figure::FigureArgs),
     /// Tabulate, per labelled region of a folder of images, how each stage responds inside it.
     Report(report::ReportArgs),
+    /// Join the shard folders of a split report (report --shard K/N) into one table.
+    Merge(merge::MergeArgs),
     /// Open the window on the given images or folders.
     Open(window::OpenArgs),
     /// Regenerate the synthetic demo images (seedling trays), their cell labels and region files.
@@ -61,6 +64,7 @@ pub fn run(cli: &Cli) -> Result<()> {
         Some(Command::Summary(a)) => summary::run(a),
         Some(Command::Figure(a)) => figure::run(a),
         Some(Command::Report(a)) => report::run(a),
+        Some(Command::Merge(a)) => merge::run(a),
         Some(Command::Open(a)) => window::open(a),
         Some(Command::SampleData(a)) => sample_data::run(a),
         Some(Command::TrainDemo(a)) => train_demo::run(a),

@@ -3,7 +3,7 @@
 
 use crate::analysis::{parse_map_kind, Colormap, MapKind};
 use crate::engine::geometry::{PadOrder, SmallStage};
-use crate::engine::input::{memory_limit_from_gb, parse_triple, DEFAULT_MEMORY_GB};
+use crate::engine::input::{memory_limit_from_gb, parse_triple, DEFAULT_MEMORY_GB, MAX_SIDE};
 use crate::engine::{Config, SessionOptions};
 use crate::error::{Error, Result};
 use clap::{Args, ValueEnum};
@@ -112,22 +112,95 @@ pub fn parse_map(s: &str) -> std::result::Result<MapArg, String> {
         .map_err(|e| e.to_string())
 }
 
-/// Percentiles `LOW,HIGH` that set a colour range.
+/// Percentiles `LOW,HIGH` that set a colour range: `0 <= LOW < HIGH <= 100`.
 pub fn parse_clip(s: &str) -> std::result::Result<(f32, f32), String> {
     let bad = || format!("'{s}': expected LOW,HIGH, e.g. 1,99");
     let (a, b) = s.split_once(',').ok_or_else(bad)?;
     let a: f32 = a.trim().parse().map_err(|_| bad())?;
     let b: f32 = b.trim().parse().map_err(|_| bad())?;
+    if !(0.0..=100.0).contains(&a) || !(0.0..=100.0).contains(&b) || a >= b {
+        return Err(format!("'{s}': percentiles need 0 <= LOW < HIGH <= 100"));
+    }
     Ok((a, b))
 }
 
-/// `S` or `HxW` into (height, width).
+/// `S` or `HxW` into (height, width), each side from 1 to [`MAX_SIDE`].
 pub fn parse_size(s: &str) -> std::result::Result<(usize, usize), String> {
-    let bad = || format!("'{s}': expected N or HxW, e.g. 224 or 480x640");
-    let parse = |p: &str| p.trim().parse::<usize>().ok().filter(|&v| v > 0);
+    let bad =
+        || format!("'{s}': expected N or HxW with sides from 1 to {MAX_SIDE}, e.g. 224 or 480x640");
+    let parse = |p: &str| {
+        p.trim()
+            .parse::<usize>()
+            .ok()
+            .filter(|&v| v > 0 && v <= MAX_SIDE as usize)
+    };
     match s.split_once(['x', 'X']) {
         Some((h, w)) => Ok((parse(h).ok_or_else(bad)?, parse(w).ok_or_else(bad)?)),
         None => parse(s).map(|v| (v, v)).ok_or_else(bad),
+    }
+}
+
+/// A normalisation mean `R,G,B`: three finite numbers.
+pub fn parse_mean(s: &str) -> std::result::Result<[f32; 3], String> {
+    let v = parse_triple(s)?;
+    if v.iter().any(|m| !m.is_finite()) {
+        return Err(format!("'{s}': the mean must be three finite numbers"));
+    }
+    Ok(v)
+}
+
+/// A normalisation std `R,G,B`: three positive finite numbers.
+pub fn parse_std(s: &str) -> std::result::Result<[f32; 3], String> {
+    let v = parse_triple(s)?;
+    if v.iter().any(|d| !(d.is_finite() && *d > 0.0)) {
+        return Err(format!(
+            "'{s}': the std must be three positive finite numbers"
+        ));
+    }
+    Ok(v)
+}
+
+/// A map opacity from 0 to 1.
+pub fn parse_opacity(s: &str) -> std::result::Result<f32, String> {
+    match s.trim().parse::<f32>() {
+        Ok(v) if (0.0..=1.0).contains(&v) => Ok(v),
+        _ => Err(format!("'{s}': the opacity is a number from 0 to 1")),
+    }
+}
+
+/// Largest figure scale (output pixels per input pixel).
+pub const MAX_SCALE: f32 = 64.0;
+
+/// A figure scale: a positive number up to [`MAX_SCALE`].
+pub fn parse_scale(s: &str) -> std::result::Result<f32, String> {
+    match s.trim().parse::<f32>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v <= MAX_SCALE => Ok(v),
+        _ => Err(format!(
+            "'{s}': the scale is a positive number of output pixels per input pixel, at most \
+             {MAX_SCALE}"
+        )),
+    }
+}
+
+/// A shard `K/N` of a split report: `1 <= K <= N`.
+pub fn parse_shard(s: &str) -> std::result::Result<crate::headless::Shard, String> {
+    let bad = || format!("'{s}': expected K/N with 1 <= K <= N, e.g. 2/8");
+    let (k, n) = s.split_once('/').ok_or_else(bad)?;
+    let k: u32 = k.trim().parse().map_err(|_| bad())?;
+    let n: u32 = n.trim().parse().map_err(|_| bad())?;
+    crate::headless::Shard::new(k, n).map_err(|e| format!("'{s}': {e}"))
+}
+
+/// Largest memory limit accepted, in GB.
+pub const MAX_MEMORY_GB: f64 = 1e6;
+
+/// A memory limit in GB: a positive number up to [`MAX_MEMORY_GB`].
+pub fn parse_memory_gb(s: &str) -> std::result::Result<f64, String> {
+    match s.trim().parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v <= MAX_MEMORY_GB => Ok(v),
+        _ => Err(format!(
+            "'{s}': the memory limit is a positive number of GB, at most {MAX_MEMORY_GB}"
+        )),
     }
 }
 
@@ -148,13 +221,13 @@ pub struct RunArgs {
     #[arg(long, value_enum)]
     pub small_stage: Option<SmallStageArg>,
     /// Normalisation mean, R,G,B [default: ImageNet 0.485,0.456,0.406].
-    #[arg(long, value_parser = parse_triple, value_name = "R,G,B")]
+    #[arg(long, value_parser = parse_mean, value_name = "R,G,B")]
     pub mean: Option<[f32; 3]>,
     /// Normalisation std, R,G,B [default: ImageNet 0.229,0.224,0.225].
-    #[arg(long, value_parser = parse_triple, value_name = "R,G,B")]
+    #[arg(long, value_parser = parse_std, value_name = "R,G,B")]
     pub std: Option<[f32; 3]>,
     /// Refuse inputs whose forward pass would need more memory than this.
-    #[arg(long, default_value_t = DEFAULT_MEMORY_GB, value_name = "GB")]
+    #[arg(long, default_value_t = DEFAULT_MEMORY_GB, value_parser = parse_memory_gb, value_name = "GB")]
     pub max_memory_gb: f64,
 }
 

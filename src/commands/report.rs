@@ -1,9 +1,9 @@
 //! `mullion report`: per labelled region of a folder of images, how each stage responds inside
 //! it (`regions.csv`, `summary.json`, optional figures).
 
-use super::options::{parse_map, MapArg, RunArgs};
+use super::options::{parse_map, parse_shard, MapArg, RunArgs};
 use crate::error::{Error, Result};
-use crate::headless::report::{run_report, ReportOptions, SUMMARY_NAME};
+use crate::headless::report::{run_report, ReportOptions, Shard};
 use clap::Args;
 use std::path::PathBuf;
 
@@ -30,6 +30,10 @@ pub struct ReportArgs {
     /// Recompute every image, even those already done with the same inputs.
     #[arg(long)]
     pub force: bool,
+    /// Do only shard K of N (1 <= K <= N): the images whose name hashes to it, written to
+    /// OUT/shard-K-of-N/; `mullion merge` joins the shards.
+    #[arg(long, value_parser = parse_shard, value_name = "K/N")]
+    pub shard: Option<Shard>,
 }
 
 impl ReportArgs {
@@ -43,6 +47,7 @@ impl ReportArgs {
             map: self.map.0.clone(),
             figures: self.figures,
             force: self.force,
+            shard: self.shard,
         })
     }
 }
@@ -56,7 +61,7 @@ pub fn run(args: &ReportArgs) -> Result<()> {
         "wrote {} ({} rows) and {}: {} images, {} computed, {} reused, {} without regions, {} failed",
         o.csv.display(),
         o.rows,
-        args.out.join(SUMMARY_NAME).display(),
+        o.summary_path.display(),
         s.images,
         s.computed,
         s.reused,
@@ -70,7 +75,7 @@ pub fn run(args: &ReportArgs) -> Result<()> {
                 "{} of {} images could not be used; each is listed with its error in {}",
                 s.failed.len(),
                 s.images,
-                args.out.join(SUMMARY_NAME).display()
+                o.summary_path.display()
             ),
         ));
     }

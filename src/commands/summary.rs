@@ -55,6 +55,15 @@ pub fn print_summary(out: &StageOutputs) -> Result<()> {
 pub fn run(args: &SummaryArgs) -> Result<()> {
     let session = Session::open(&args.run.session_options()?)?;
     print!("{}", session.report);
+    let header = crate::engine::input::read_header(&args.image)?;
+    if let Some(bytes) = session.estimate_run_bytes(&header) {
+        println!(
+            "memory       about {:.3} GB at the peak for this {}x{} image (estimate)",
+            bytes as f64 / 1e9,
+            header.width,
+            header.height
+        );
+    }
     let out = session.run_image(&args.image, false, false)?;
     print_summary(&out)
 }

@@ -10,15 +10,39 @@ pub struct TrainDemoArgs {
     /// Folder to write the checkpoints and the model card into.
     #[arg(long, default_value = "sample-data", value_name = "DIR")]
     pub out: PathBuf,
-    /// Optimisation steps.
-    #[arg(long, default_value_t = 600)]
+    /// Optimisation steps (1 to 1000000).
+    #[arg(long, default_value_t = 600, value_parser = parse_steps)]
     pub steps: usize,
-    /// Images per step.
-    #[arg(long, default_value_t = 4)]
+    /// Images per step (1 to 256).
+    #[arg(long, default_value_t = 4, value_parser = parse_batch)]
     pub batch: usize,
-    /// Stop after this many minutes even if steps remain.
-    #[arg(long, default_value_t = 25.0)]
+    /// Stop after this many minutes even if steps remain (above 0, at most 10000).
+    #[arg(long, default_value_t = 25.0, value_parser = parse_minutes)]
     pub minutes: f64,
+}
+
+fn whole_in(s: &str, max: usize, what: &str) -> std::result::Result<usize, String> {
+    match s.trim().parse::<usize>() {
+        Ok(v) if (1..=max).contains(&v) => Ok(v),
+        _ => Err(format!("'{s}': {what} is a whole number from 1 to {max}")),
+    }
+}
+
+fn parse_steps(s: &str) -> std::result::Result<usize, String> {
+    whole_in(s, 1_000_000, "the number of steps")
+}
+
+fn parse_batch(s: &str) -> std::result::Result<usize, String> {
+    whole_in(s, 256, "the batch")
+}
+
+fn parse_minutes(s: &str) -> std::result::Result<f64, String> {
+    match s.trim().parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v <= 10_000.0 => Ok(v),
+        _ => Err(format!(
+            "'{s}': the minutes are a number above 0, at most 10000"
+        )),
+    }
 }
 
 pub fn run(args: &TrainDemoArgs) -> Result<()> {

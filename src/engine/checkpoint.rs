@@ -5,7 +5,7 @@
 //! one canonical part name ([`Part`]), reads the model shape off the tensor shapes, and keeps a
 //! plain-words account of what it used, ignored and could not find ([`LoadReport`]).
 
-use super::config::{Config, ConfigOverride};
+use super::config::{Config, ConfigOverride, MAX_BLOCKS_PER_STAGE, MAX_STAGES};
 use crate::engine::geometry::{PadOrder, Semantics, SmallStage};
 use crate::error::{Error, Result};
 use candle_core::{DType, Device, Tensor};
@@ -103,6 +103,23 @@ impl Part {
     }
 }
 
+/// The tensors of every block, by their sub-names in timm's spelling.
+pub const BLOCK_PARTS: [&str; 13] = [
+    "norm1.weight",
+    "norm1.bias",
+    "attn.qkv.weight",
+    "attn.qkv.bias",
+    "attn.relative_position_bias_table",
+    "attn.proj.weight",
+    "attn.proj.bias",
+    "norm2.weight",
+    "norm2.bias",
+    "mlp.fc1.weight",
+    "mlp.fc1.bias",
+    "mlp.fc2.weight",
+    "mlp.fc2.bias",
+];
+
 /// How one canonical tensor is read from the file.
 #[derive(Clone, Debug, PartialEq)]
 enum Recipe {
@@ -185,6 +202,17 @@ fn block_name_tf5(part: &str) -> Recipe {
 }
 
 impl Layout {
+    /// The file's name for the stages up to their index: `{prefix}layers.` (timm, original) or
+    /// `{prefix}encoder.layers.` (transformers); stage `i`'s blocks are `<this>{i}.blocks.{j}.`.
+    pub fn stages_prefix(&self) -> String {
+        match self.kind {
+            LayoutKind::Timm | LayoutKind::Original => format!("{}layers.", self.prefix),
+            LayoutKind::Transformers4 | LayoutKind::Transformers5 => {
+                format!("{}encoder.layers.", self.prefix)
+            }
+        }
+    }
+
     /// Where a part may be, in order of preference. transformers 5.x backbones keep the model
     /// under `swin.` but their per-stage norms beside it, so those are also looked for one
     /// prefix level up.
@@ -270,8 +298,16 @@ pub struct Checkpoint {
     used: RefCell<BTreeSet<String>>,
 }
 
-/// What kind of file this is, from its first bytes.
+/// What kind of file this is, from its first bytes. Anything but a regular file is refused
+/// before it is opened (opening a FIFO would wait for a writer for ever).
 fn sniff(path: &Path) -> Result<&'static str> {
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if !meta.is_file() {
+        return Err(Error::bad_file(
+            path,
+            "not a regular file (a folder, FIFO or device); a checkpoint is a file",
+        ));
+    }
     let mut head = [0u8; 16];
     let mut f = std::fs::File::open(path).map_err(|e| Error::io(path, e))?;
     let mut n = 0;
@@ -477,6 +513,127 @@ impl Checkpoint {
         self.shape(part).is_some()
     }
 
+    /// Whether every file tensor of `part` is present (whatever their shapes).
+    pub fn present(&self, part: &Part) -> bool {
+        self.resolve(part)
+            .names()
+            .iter()
+            .all(|n| self.shapes.contains_key(*n))
+    }
+
+    /// For a part stacked from several tensors (separate q, k, v) that are all present but do
+    /// not stack into one, what is wrong.
+    pub fn stack_problem(&self, part: &Part) -> Option<String> {
+        let Recipe::Cat(names) = self.resolve(part) else {
+            return None;
+        };
+        if !self.present(part) || self.shape(part).is_some() {
+            return None;
+        }
+        let shapes: Vec<String> = names
+            .iter()
+            .map(|n| format!("{n} {:?}", self.shapes[n].0))
+            .collect();
+        Some(format!(
+            "the tensors {} do not stack into one {} (they must agree in every dimension but \
+             the first)",
+            shapes.join(", "),
+            part.canonical()
+        ))
+    }
+
+    /// Every (stage, block) with at least one tensor in the file, and the number of stages the
+    /// file implies (blocks, and patch merging, which names the stage it leads into). Indices
+    /// beyond the bounds Mullion runs are an error naming the tensor.
+    fn block_indices(&self) -> Result<(BTreeMap<usize, BTreeSet<usize>>, usize)> {
+        let stages = self.layout.stages_prefix();
+        let merge_leads_into = match self.layout.kind {
+            LayoutKind::Timm => 0,
+            _ => 1,
+        };
+        let mut blocks: BTreeMap<usize, BTreeSet<usize>> = BTreeMap::new();
+        let mut n_stages = 0usize;
+        let index = |name: &str, text: &str, max: usize, what: &str| -> Result<Option<usize>> {
+            if text.is_empty() || !text.bytes().all(|b| b.is_ascii_digit()) {
+                return Ok(None);
+            }
+            match text.parse::<usize>() {
+                Ok(v) if v < max => Ok(Some(v)),
+                _ => Err(Error::bad_file(
+                    &self.path,
+                    format!(
+                        "tensor {name} has {what} index {text}; Mullion runs at most {max} \
+                         {what}s"
+                    ),
+                )),
+            }
+        };
+        for name in self.shapes.keys() {
+            let Some(rest) = name.strip_prefix(&stages) else {
+                continue;
+            };
+            let mut it = rest.split('.');
+            let (Some(i), Some(kind)) = (it.next(), it.next()) else {
+                continue;
+            };
+            let Some(i) = index(name, i, MAX_STAGES, "stage")? else {
+                continue;
+            };
+            match kind {
+                "blocks" => {
+                    let Some(j) = it.next() else { continue };
+                    if let Some(j) = index(name, j, MAX_BLOCKS_PER_STAGE, "block")? {
+                        blocks.entry(i).or_default().insert(j);
+                        n_stages = n_stages.max(i + 1);
+                    }
+                }
+                "downsample" => n_stages = n_stages.max(i + 1 + merge_leads_into),
+                _ => {}
+            }
+        }
+        if n_stages > MAX_STAGES {
+            return Err(Error::bad_file(
+                &self.path,
+                format!("the tensors imply {n_stages} stages; Mullion runs at most {MAX_STAGES}"),
+            ));
+        }
+        Ok((blocks, n_stages))
+    }
+
+    /// Blocks per stage from every block index in the file: stage `i` has as many blocks as its
+    /// highest index + 1, so a block missing in the middle is a hole the loader names, never a
+    /// shallower model. A stage with no block at all, below one that has blocks, is an error.
+    pub fn infer_depths(&self) -> Result<Vec<usize>> {
+        let (blocks, n_stages) = self.block_indices()?;
+        let depths: Vec<usize> = (0..n_stages)
+            .map(|i| blocks.get(&i).and_then(|b| b.last()).map_or(0, |j| j + 1))
+            .collect();
+        if depths.is_empty() {
+            return Err(Error::bad_file(
+                &self.path,
+                format!(
+                    "found a patch embedding but no blocks (expected e.g. {})",
+                    self.file_names(&Part::block(0, 0, "norm1.weight")).join("")
+                ),
+            ));
+        }
+        if let Some(i) = depths.iter().position(|&d| d == 0) {
+            let later = depths.len() - 1;
+            return Err(Error::bad_file(
+                &self.path,
+                format!(
+                    "stage {i} has no block tensors ({}{i}.blocks.*) although the file has {} \
+                     stages; missing: all of stage {i}'s blocks, e.g. {}",
+                    self.layout.stages_prefix(),
+                    later + 1,
+                    self.file_names(&Part::block(i, 0, "norm1.weight"))
+                        .join(" + ")
+                ),
+            ));
+        }
+        Ok(depths)
+    }
+
     /// The file's names for a part (for messages).
     pub fn file_names(&self, part: &Part) -> Vec<String> {
         self.layout
@@ -559,31 +716,41 @@ impl Checkpoint {
             )));
         }
         let (embed_dim, in_chans, patch) = (proj[0], proj[1], proj[2]);
-        let mut depths = Vec::new();
-        while self.has(&Part::block(depths.len(), 0, "norm1.weight")) {
-            let i = depths.len();
-            let mut d = 0;
-            while self.has(&Part::block(i, d, "norm1.weight")) {
-                d += 1;
+        let depths = match &over.depths {
+            Some(d) => {
+                if d.is_empty()
+                    || d.len() > MAX_STAGES
+                    || d.iter().any(|&b| b == 0 || b > MAX_BLOCKS_PER_STAGE)
+                {
+                    return Err(Error::BadArgument(format!(
+                        "depths {d:?}: expected 1 to {MAX_STAGES} stages of 1 to \
+                         {MAX_BLOCKS_PER_STAGE} blocks"
+                    )));
+                }
+                d.clone()
             }
-            depths.push(d);
-        }
-        if depths.is_empty() {
-            return Err(bad(format!(
-                "found a patch embedding but no blocks (expected e.g. {})",
-                self.file_names(&Part::block(0, 0, "norm1.weight")).join("")
-            )));
-        }
+            None => self.infer_depths()?,
+        };
         let mut heads = Vec::new();
         let mut window: Option<(usize, usize)> = None;
-        for i in 0..depths.len() {
-            let part = Part::block(i, 0, "attn.relative_position_bias_table");
-            let t = self.shape(&part).ok_or_else(|| {
-                bad(format!(
-                    "missing tensor {}",
+        for (i, &depth) in depths.iter().enumerate() {
+            // The first block of the stage whose table is in the file (a hole elsewhere is
+            // named by the loader's list of missing tensors).
+            let found = (0..depth)
+                .map(|j| Part::block(i, j, "attn.relative_position_bias_table"))
+                .find_map(|part| self.shape(&part).map(|t| (part, t)));
+            let Some((part, t)) = found else {
+                if over.heads.is_some() {
+                    heads.push(0);
+                    continue;
+                }
+                let part = Part::block(i, 0, "attn.relative_position_bias_table");
+                return Err(bad(format!(
+                    "missing tensor {} (no block of stage {i} has a bias table, so its heads \
+                     cannot be read)",
                     self.file_names(&part).join("")
-                ))
-            })?;
+                )));
+            };
             if t.len() != 2 {
                 return Err(bad(format!(
                     "bias table {} has shape {t:?}; expected [rows, heads]",
@@ -595,8 +762,8 @@ impl Checkpoint {
                 window = Some(window.map_or((m, m), |w| if m > w.0 { (m, m) } else { w }));
             }
         }
-        let fc1 = self
-            .shape(&Part::block(0, 0, "mlp.fc1.weight"))
+        let fc1 = (0..depths.first().copied().unwrap_or(0))
+            .find_map(|j| self.shape(&Part::block(0, j, "mlp.fc1.weight")))
             .ok_or_else(|| {
                 bad(format!(
                     "missing tensor {}",
@@ -604,7 +771,7 @@ impl Checkpoint {
                         .join("")
                 ))
             })?;
-        let mlp_ratio = fc1[0] as f64 / embed_dim as f64;
+        let mlp_ratio = fc1.first().copied().unwrap_or(0) as f64 / embed_dim.max(1) as f64;
         let window =
             match (over.window, window) {
                 (Some(w), _) => w.dims(),
@@ -624,8 +791,12 @@ impl Checkpoint {
             window,
             mlp_ratio: over.mlp_ratio.unwrap_or(mlp_ratio),
         };
-        cfg.validate()
-            .map_err(|m| bad(format!("inconsistent model shape: {m}")))?;
+        cfg.validate().map_err(|m| {
+            bad(format!(
+                "inconsistent model shape: {m} (the shape read from the tensors, with any \
+                 --config fields applied)"
+            ))
+        })?;
         Ok(cfg)
     }
 
@@ -644,8 +815,8 @@ impl Checkpoint {
         names
             .iter()
             .filter_map(|n| self.shapes.get(n))
-            .map(|(s, _)| s.iter().product::<usize>() as u64)
-            .sum()
+            .map(|(s, _)| s.iter().fold(1u64, |a, &d| a.saturating_mul(d as u64)))
+            .fold(0u64, u64::saturating_add)
     }
 
     pub fn stored_dtypes(&self) -> BTreeSet<String> {
@@ -659,7 +830,7 @@ impl Checkpoint {
 /// `M` when `rows == (2M-1)^2`.
 pub fn square_window(rows: usize) -> Option<usize> {
     let r = (rows as f64).sqrt().round() as usize;
-    (r * r == rows && r % 2 == 1).then_some(r.div_ceil(2))
+    (r.checked_mul(r) == Some(rows) && r % 2 == 1).then_some(r.div_ceil(2))
 }
 
 /// Why a tensor in the file was not used.

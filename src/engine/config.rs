@@ -57,6 +57,27 @@ impl WindowSpec {
     }
 }
 
+/// Bounds on every size read from a checkpoint, a configuration file or a flag. They are far
+/// above the largest published models (Swin-L: C = 192, 18 blocks in a stage, 48 heads,
+/// window 12; the largest V2 model has C = 512 and 42 blocks in a stage) and low enough that
+/// no loop, table or allocation they size can hang or exhaust the machine before the memory
+/// estimate runs. (Headroom of this kind is common practice; the numbers are Mullion's own.)
+pub const MAX_STAGES: usize = 8;
+/// Blocks in one stage.
+pub const MAX_BLOCKS_PER_STAGE: usize = 256;
+/// Channels of the widest stage (`embed_dim * 2^(stages-1)`).
+pub const MAX_CHANNELS: usize = 16384;
+/// Attention heads of one stage.
+pub const MAX_HEADS: usize = 1024;
+/// Window side (tokens).
+pub const MAX_WINDOW: usize = 128;
+/// Patch side (pixels).
+pub const MAX_PATCH: usize = 256;
+/// Input channels.
+pub const MAX_IN_CHANS: usize = 64;
+/// MLP hidden width over the block width.
+pub const MAX_MLP_RATIO: f64 = 64.0;
+
 /// The published sizes (Liu et al. 2021, Sec. 3.3): name, C, depths, heads.
 const PRESETS: [(&str, usize, [usize; 4], [usize; 4]); 4] = [
     ("tiny", 96, [2, 2, 6, 2], [3, 6, 12, 24]),
@@ -195,14 +216,111 @@ impl Config {
         n
     }
 
-    /// Check the shape is one the engine can run.
+    /// Bytes the weights take while the model is loaded: every parameter as f32, and the
+    /// weights of linear layers a second time (transposed once at load for the matmul).
+    pub fn weight_bytes(&self) -> u64 {
+        let c = self;
+        let mut linear = 0u64;
+        for i in 0..c.n_stages() {
+            let d = c.dim(i) as u64;
+            let h = c.mlp_hidden(i) as u64;
+            linear += c.depths[i] as u64 * (4 * d * d + 2 * d * h);
+            if i > 0 {
+                let din = c.dim(i - 1) as u64;
+                linear += 4 * din * 2 * din;
+            }
+        }
+        let p0 = c.patch as u64;
+        linear += c.embed_dim as u64 * c.in_chans as u64 * p0 * p0;
+        4 * (c.parameter_count(true, None) + linear)
+    }
+
+    /// Peak bytes of the tensors alive during one forward pass at `image` = (height, width),
+    /// the normalised input `[3, H, W]` included, from the engine's own sequence of tensors:
+    /// the patch embedding (input, padded copy, patch matrix, projection), then for every block
+    /// the larger of its attention moment (block input, LN output, window batch, q/k/v before
+    /// and after the permute, scaled q, two attention matrices `[windows, heads, N, N]` and the
+    /// shift mask) and its MLP moment (four token matrices and two hidden ones), on top of
+    /// every stage output already kept. Checked arithmetic: `None` when it overflows.
+    pub fn forward_peak_bytes(&self, image: (usize, usize), semantics: Semantics) -> Option<u64> {
+        if image.0 == 0 || image.1 == 0 || self.validate().is_err() {
+            return None;
+        }
+        let g = Geometry::new(image, &self.shape(), semantics);
+        let m = |a: u64, b: u64| a.checked_mul(b);
+        let u = |v: usize| v as u64;
+        let c0 = u(self.embed_dim);
+        let input = m(3, m(u(image.0), u(image.1))?)?;
+        let padded_px = m(u(g.input_padded.0), u(g.input_padded.1))?;
+        let padded = if g.input_padded == image {
+            0
+        } else {
+            m(3, padded_px)?
+        };
+        let t0 = m(u(g.embed_grid().0), u(g.embed_grid().1))?;
+        let embed_moment = m(3, padded_px)?
+            .checked_add(padded)?
+            .checked_add(m(2, m(t0, c0)?)?)?;
+        // Kept from here on: the input and the embedding; stage outputs join as they finish.
+        let mut kept = input.checked_add(m(t0, c0)?)?;
+        let mut peak = input.checked_add(embed_moment)?;
+        let mut prev: Option<(u64, u64)> = None; // tokens and channels of the previous stage
+        for (i, s) in g.stages.iter().enumerate() {
+            let c = u(self.dim(i));
+            let hidden = u(self.mlp_hidden(i));
+            let heads = u(self.heads[i]);
+            let t = m(u(s.grid.0), u(s.grid.1))?;
+            let tc = m(t, c)?;
+            if let Some((tp, cp)) = prev {
+                // Gather of 2x2 neighbours from the padded copy, LN, reduction.
+                let merged = m(4, m(t, cp)?)?;
+                let moment = m(tp.checked_add(1)?, cp)?
+                    .checked_add(m(2, merged)?)?
+                    .checked_add(tc)?;
+                peak = peak.max(kept.checked_add(moment)?);
+            }
+            for b in &s.blocks {
+                let n = u(b.window_area());
+                let batch = m(u(b.n_windows()), n)?;
+                let bc = m(batch, c)?;
+                let scores = m(m(batch, heads)?, n)?;
+                let mask = if b.is_shifted() { m(batch, n)? } else { 0 };
+                let base = m(2, tc)?.checked_add(bc)?;
+                let gather = m(t.checked_add(1)?, c)?;
+                let attention = base.checked_add(
+                    gather
+                        .max(m(6, bc)?)
+                        .max(m(4, bc)?.checked_add(m(2, scores)?)?.checked_add(mask)?),
+                )?;
+                let mlp = m(6, tc)?.checked_add(m(2, m(t, hidden)?)?)?;
+                peak = peak.max(kept.checked_add(attention.max(mlp))?);
+            }
+            kept = kept.checked_add(tc)?;
+            prev = Some((t, c));
+        }
+        m(4, peak)
+    }
+
+    /// Check the shape is one the engine can run, within the bounds above.
     pub fn validate(&self) -> Result<(), String> {
         if self.depths.is_empty() {
             return Err("the model has no stages".into());
         }
+        if self.depths.len() > MAX_STAGES {
+            return Err(format!(
+                "{} stages; Mullion runs at most {MAX_STAGES}",
+                self.depths.len()
+            ));
+        }
         if let Some(i) = self.depths.iter().position(|&d| d == 0) {
             return Err(format!(
                 "stage {i} has depth 0; every stage needs at least one block"
+            ));
+        }
+        if let Some(i) = self.depths.iter().position(|&d| d > MAX_BLOCKS_PER_STAGE) {
+            return Err(format!(
+                "stage {i} has {} blocks; Mullion runs at most {MAX_BLOCKS_PER_STAGE} per stage",
+                self.depths[i]
             ));
         }
         if self.heads.len() != self.depths.len() {
@@ -215,16 +333,50 @@ impl Config {
         if self.patch == 0 || self.embed_dim == 0 || self.window.0 == 0 || self.window.1 == 0 {
             return Err("patch size, embed dim and window must be positive".into());
         }
+        if self.in_chans == 0 || self.in_chans > MAX_IN_CHANS {
+            return Err(format!(
+                "{} input channels; expected 1 to {MAX_IN_CHANS}",
+                self.in_chans
+            ));
+        }
+        if self.patch > MAX_PATCH {
+            return Err(format!(
+                "patch {}; Mullion runs patches up to {MAX_PATCH}",
+                self.patch
+            ));
+        }
+        if self.window.0 > MAX_WINDOW || self.window.1 > MAX_WINDOW {
+            return Err(format!(
+                "window {}x{}; Mullion runs windows up to {MAX_WINDOW}x{MAX_WINDOW}",
+                self.window.0, self.window.1
+            ));
+        }
+        // With at most MAX_STAGES stages the shift below cannot overflow.
+        let widest = self
+            .embed_dim
+            .checked_mul(1 << (self.depths.len() - 1))
+            .filter(|&c| c <= MAX_CHANNELS);
+        if widest.is_none() {
+            return Err(format!(
+                "embed dim {} over {} stages gives more than {MAX_CHANNELS} channels in the last \
+                 stage",
+                self.embed_dim,
+                self.depths.len()
+            ));
+        }
         for (i, &h) in self.heads.iter().enumerate() {
-            if h == 0 || self.dim(i) % h != 0 {
+            if h == 0 || h > MAX_HEADS || !self.dim(i).is_multiple_of(h) {
                 return Err(format!(
                     "stage {i}: {} channels do not split into {h} heads",
                     self.dim(i)
                 ));
             }
         }
-        if !(self.mlp_ratio > 0.0) {
-            return Err("mlp ratio must be positive".into());
+        if !(self.mlp_ratio > 0.0 && self.mlp_ratio <= MAX_MLP_RATIO) {
+            return Err(format!(
+                "mlp ratio {}: must be above 0 and at most {MAX_MLP_RATIO}",
+                self.mlp_ratio
+            ));
         }
         Ok(())
     }
@@ -268,6 +420,76 @@ mod tests {
         assert_eq!(Config::preset("T"), Some(Config::tiny()));
         assert_eq!(Config::preset("L").unwrap().embed_dim, 192);
         assert!(Config::preset("huge").is_none());
+    }
+
+    #[test]
+    fn validate_bounds_every_size() {
+        let ok = Config::tiny();
+        assert!(ok.validate().is_ok());
+        let cases: Vec<(Config, &str)> = vec![
+            (
+                Config {
+                    depths: vec![1_000_000_000],
+                    heads: vec![3],
+                    ..ok.clone()
+                },
+                "blocks",
+            ),
+            (
+                Config {
+                    window: (1_000_000, 1_000_000),
+                    ..ok.clone()
+                },
+                "window",
+            ),
+            (
+                Config {
+                    embed_dim: usize::MAX,
+                    ..ok.clone()
+                },
+                "channels",
+            ),
+            (
+                Config {
+                    depths: vec![1; 40],
+                    heads: vec![1; 40],
+                    ..ok.clone()
+                },
+                "stages",
+            ),
+            (
+                Config {
+                    patch: 100_000,
+                    ..ok.clone()
+                },
+                "patch",
+            ),
+            (
+                Config {
+                    mlp_ratio: f64::INFINITY,
+                    ..ok.clone()
+                },
+                "mlp ratio",
+            ),
+            (
+                Config {
+                    mlp_ratio: f64::NAN,
+                    ..ok.clone()
+                },
+                "mlp ratio",
+            ),
+            (
+                Config {
+                    in_chans: 0,
+                    ..ok.clone()
+                },
+                "input channels",
+            ),
+        ];
+        for (c, word) in cases {
+            let e = c.validate().unwrap_err();
+            assert!(e.contains(word), "{e}");
+        }
     }
 
     #[test]

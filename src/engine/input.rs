@@ -3,7 +3,7 @@
 
 use crate::error::{Error, Result};
 use candle_core::{Device, Tensor};
-use image::{ImageDecoder, ImageReader, RgbImage};
+use image::{ImageDecoder, ImageReader, Limits, RgbImage};
 use std::path::Path;
 
 /// Largest image side Mullion decodes (pixels).
@@ -105,11 +105,58 @@ pub fn apply_policy(img: &RgbImage, policy: InputPolicy) -> RgbImage {
     }
 }
 
+/// What an image file's header says, read before any pixel is decoded.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct ImageHeader {
+    /// Width and height as displayed (after the EXIF orientation).
+    pub width: u32,
+    pub height: u32,
+    /// Bytes per pixel of the decoded buffer (3 for 8-bit RGB, 6 for 16-bit RGB, ...).
+    pub bytes_per_pixel: u64,
+    /// Whether the EXIF orientation asks for a flip or rotation (one more buffer while applied).
+    pub reoriented: bool,
+}
+
+impl ImageHeader {
+    /// Pixels of the image.
+    pub fn pixels(&self) -> u64 {
+        self.width as u64 * self.height as u64
+    }
+
+    /// Peak bytes while decoding to RGB and normalising: the decoded buffer (twice while a
+    /// rotation is applied) and its 8-bit RGB copy, then that copy with the `[3, H, W]` f32
+    /// input made from it.
+    pub fn decode_peak_bytes(&self) -> Option<u64> {
+        let px = self.pixels();
+        let decoded = px.checked_mul(self.bytes_per_pixel)?;
+        let decode = decoded
+            .checked_mul(if self.reoriented { 2 } else { 1 })?
+            .checked_add(px.checked_mul(3)?)?;
+        let normalise = px.checked_mul(3 + 12)?;
+        Some(decode.max(normalise))
+    }
+}
+
 /// Decode an image file to RGB with its EXIF orientation applied.
 pub fn load_image(path: impl AsRef<Path>) -> Result<RgbImage> {
-    let path = path.as_ref();
+    load_image_within(path, |_| Ok(()))
+}
+
+/// An image file opened up to its header.
+struct Opened {
+    decoder: Box<dyn image::ImageDecoder>,
+    header: ImageHeader,
+    orientation: Option<image::metadata::Orientation>,
+    limits: Limits,
+}
+
+fn open_decoder(path: &Path) -> Result<Opened> {
     let bad = |m: String| Error::bad_file(path, m);
-    let reader = ImageReader::open(path)
+    let meta = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if !meta.is_file() {
+        return Err(bad("not a regular file".into()));
+    }
+    let mut reader = ImageReader::open(path)
         .map_err(|e| Error::io(path, e))?
         .with_guessed_format()
         .map_err(|e| Error::io(path, e))?;
@@ -118,9 +165,21 @@ pub fn load_image(path: impl AsRef<Path>) -> Result<RgbImage> {
             "not an image Mullion can read (PNG, JPEG, WebP, TIFF, BMP)".into(),
         ));
     }
-    let mut decoder = reader
-        .into_decoder()
-        .map_err(|e| bad(format!("cannot decode: {e}")))?;
+    // Until the header is read: the largest buffer an image within the side limit can need.
+    // The sides are checked below, with a message that gives them.
+    let mut limits = Limits::default();
+    limits.max_alloc = Some(MAX_SIDE as u64 * MAX_SIDE as u64 * 16);
+    reader.limits(limits.clone());
+    limits.max_image_width = Some(MAX_SIDE);
+    limits.max_image_height = Some(MAX_SIDE);
+    let mut decoder = reader.into_decoder().map_err(|e| match e {
+        image::ImageError::Limits(_) => Error::Limit(format!(
+            "{}: the image is larger than Mullion opens ({MAX_SIDE} pixels a side; resize it \
+             first)",
+            path.display()
+        )),
+        e => bad(format!("cannot decode: {e}")),
+    })?;
     let (w, h) = decoder.dimensions();
     if w > MAX_SIDE || h > MAX_SIDE {
         return Err(Error::Limit(format!(
@@ -133,12 +192,58 @@ pub fn load_image(path: impl AsRef<Path>) -> Result<RgbImage> {
         return Err(bad("the image has no pixels".into()));
     }
     let orientation = decoder.orientation().ok();
+    use image::metadata::Orientation as O;
+    let swaps = matches!(
+        orientation,
+        Some(O::Rotate90 | O::Rotate270 | O::Rotate90FlipH | O::Rotate270FlipH)
+    );
+    let header = ImageHeader {
+        width: if swaps { h } else { w },
+        height: if swaps { w } else { h },
+        bytes_per_pixel: decoder.color_type().bytes_per_pixel() as u64,
+        reoriented: orientation.is_some_and(|o| o != O::NoTransforms),
+    };
+    Ok(Opened {
+        decoder: Box::new(decoder),
+        header,
+        orientation,
+        limits,
+    })
+}
+
+/// What an image file's header says (size as displayed, pixel format), without decoding it.
+pub fn read_header(path: impl AsRef<Path>) -> Result<ImageHeader> {
+    Ok(open_decoder(path.as_ref())?.header)
+}
+
+/// [`load_image`] that first reads the header and lets `check` refuse the image (e.g. for the
+/// memory its run would need) before a single pixel is decoded. The decoder is held to the
+/// bytes the header announces (the image crate's `Limits`), so a file that lies in its header
+/// cannot make it allocate more.
+pub fn load_image_within(
+    path: impl AsRef<Path>,
+    check: impl FnOnce(&ImageHeader) -> Result<()>,
+) -> Result<RgbImage> {
+    let path = path.as_ref();
+    let bad = |m: String| Error::bad_file(path, m);
+    let Opened {
+        mut decoder,
+        header,
+        orientation,
+        mut limits,
+    } = open_decoder(path)?;
+    check(&header)?;
+    let exact = decoder.total_bytes();
+    limits.max_alloc = Some(exact.saturating_add(exact / 4).saturating_add(64 << 20));
+    decoder
+        .set_limits(limits)
+        .map_err(|e| bad(format!("cannot decode: {e}")))?;
     let mut img = image::DynamicImage::from_decoder(decoder)
         .map_err(|e| bad(format!("cannot decode (truncated or corrupt?): {e}")))?;
     if let Some(o) = orientation {
         img.apply_orientation(o);
     }
-    Ok(img.to_rgb8())
+    Ok(img.into_rgb8())
 }
 
 /// `[3, H, W]` f32: `(u8 / 255 - mean) / std` per channel, the image at its own size.

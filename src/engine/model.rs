@@ -4,7 +4,7 @@
 //! `forward` takes one normalised image at its own size, lays out the partition with
 //! [`Geometry`], reports progress after every block and stops between blocks when cancelled.
 
-use super::checkpoint::{ignored_reason, Checkpoint, LayoutKind, Part};
+use super::checkpoint::{ignored_reason, Checkpoint, LayoutKind, Part, BLOCK_PARTS};
 use super::config::{Config, ConfigOverride};
 use super::layers::{Block, LayerNorm, PatchEmbed, PatchMerging, WeightSource};
 use crate::engine::geometry::{Geometry, Semantics};
@@ -163,26 +163,22 @@ impl Backbone {
     /// Build from an opened checkpoint; every tensor the backbone needs must be there.
     pub fn from_checkpoint(ckpt: &Checkpoint, over: &ConfigOverride) -> Result<Self> {
         let config = ckpt.infer_config(over)?;
-        let missing: Vec<String> = required_parts(&config)
-            .iter()
-            .filter(|p| !ckpt.has(p))
-            .flat_map(|p| ckpt.file_names(p))
-            .collect();
+        let parts = required_parts(&config);
+        if let Some(problem) = parts.iter().find_map(|p| ckpt.stack_problem(p)) {
+            return Err(Error::bad_file(&ckpt.path, problem));
+        }
+        let missing: Vec<&Part> = parts.iter().filter(|p| !ckpt.present(p)).collect();
         if !missing.is_empty() {
-            let shown: Vec<_> = missing.iter().take(8).cloned().collect();
+            let n: usize = missing.iter().map(|p| ckpt.file_names(p).len()).sum();
             return Err(Error::bad_file(
                 &ckpt.path,
                 format!(
-                    "{} tensor(s) the backbone needs are missing ({} layout, prefix '{}'): {}{}",
-                    missing.len(),
+                    "{n} tensor(s) the backbone needs are missing ({} layout, prefix '{}', \
+                     depths {:?} read from the block indices in the file): {}",
                     ckpt.layout.kind.describe(),
                     ckpt.layout.prefix,
-                    shown.join(", "),
-                    if missing.len() > shown.len() {
-                        ", ..."
-                    } else {
-                        ""
-                    }
+                    config.depths,
+                    describe_missing(ckpt, &missing)
                 ),
             ));
         }
@@ -223,30 +219,33 @@ impl Backbone {
         )
     }
 
-    /// A rough upper bound of the memory one forward pass at `image` needs, in bytes: the
-    /// largest stage's activations (window batch, q/k/v, attention weights, MLP hidden) plus
-    /// every stage output kept.
-    pub fn estimate_bytes(&self, image: (usize, usize), semantics: Option<Semantics>) -> u64 {
-        let g = self.geometry(image, semantics);
-        let mut peak = 0u64;
-        let mut kept = 0u64;
-        for (i, s) in g.stages.iter().enumerate() {
-            let c = self.config.dim(i) as u64;
-            let tokens = (s.grid.0 * s.grid.1) as u64;
-            let per_block = s
-                .blocks
-                .iter()
-                .map(|b| {
-                    let batch = (b.n_windows() * b.window_area()) as u64;
-                    batch * (5 * c + 2 * self.config.heads[i] as u64 * b.window_area() as u64)
-                })
-                .max()
-                .unwrap_or(0);
-            let mlp = tokens * 2 * self.config.mlp_hidden(i) as u64;
-            peak = peak.max(per_block.max(mlp) + 3 * tokens * c);
-            kept += tokens * c;
-        }
-        4 * (peak + kept)
+    /// Bytes the weights take while the model is loaded (see [`Config::weight_bytes`]).
+    pub fn weight_bytes(&self) -> u64 {
+        self.config.weight_bytes()
+    }
+
+    /// Peak bytes of the tensors of one forward pass at `image` (see
+    /// [`Config::forward_peak_bytes`]); `semantics` defaults to the checkpoint's.
+    pub fn forward_peak_bytes(
+        &self,
+        image: (usize, usize),
+        semantics: Option<Semantics>,
+    ) -> Option<u64> {
+        self.config
+            .forward_peak_bytes(image, semantics.unwrap_or(self.default_semantics))
+    }
+
+    /// The bytes a forward pass at `image` needs at its peak, the process and the weights
+    /// included ([`BASE_BYTES`], [`Self::weight_bytes`], [`Self::forward_peak_bytes`]);
+    /// `None` when the sizes are too large to count.
+    pub fn estimate_bytes(
+        &self,
+        image: (usize, usize),
+        semantics: Option<Semantics>,
+    ) -> Option<u64> {
+        BASE_BYTES
+            .checked_add(self.weight_bytes())?
+            .checked_add(self.forward_peak_bytes(image, semantics)?)
     }
 
     /// Refuse inputs whose forward pass would need more than `limit` bytes.
@@ -256,18 +255,7 @@ impl Backbone {
         semantics: Option<Semantics>,
         limit: u64,
     ) -> Result<()> {
-        let need = self.estimate_bytes(image, semantics);
-        if need > limit {
-            return Err(Error::Limit(format!(
-                "a {}x{} input would need about {:.1} GB for this backbone, more than the {:.1} GB \
-                 allowed; resize the image or raise the limit (--max-memory-gb)",
-                image.1,
-                image.0,
-                need as f64 / 1e9,
-                limit as f64 / 1e9
-            )));
-        }
-        Ok(())
+        check_budget(self.estimate_bytes(image, semantics), image, limit)
     }
 
     /// Run the backbone on one normalised image `[chans, H, W]` (f32) at its own size.
@@ -294,9 +282,24 @@ impl Backbone {
         let total = self.config.total_blocks() + 1;
         let mut done = 0;
 
+        if let Some((count, first, value)) = count_non_finite(image)? {
+            return Err(Error::NonFinite(format!(
+                "the normalised input holds {count} non-finite value(s) (first: {value} at \
+                 element {first}); check the normalisation (--mean, --std)"
+            )));
+        }
         let (ph, pw) = geometry.input_pad();
-        let x = image.pad_with_zeros(1, 0, ph)?.pad_with_zeros(2, 0, pw)?;
-        let mut x = self.embed.forward(&x)?;
+        // The padded copy is dropped as soon as the patches are embedded.
+        let mut x = {
+            let padded = image.pad_with_zeros(1, 0, ph)?.pad_with_zeros(2, 0, pw)?;
+            self.embed.forward(&padded)?
+        };
+        check_finite(&x, || {
+            "the patch embedding (before stage 0) produced non-finite values (NaN or \
+             infinite) from a finite input: its weights overflow f32 on this image, or the \
+             normalisation (--std) scales the input too far"
+                .to_string()
+        })?;
         let (eh, ew) = geometry.embed_grid();
         let embed = x.reshape((eh, ew, self.config.embed_dim))?;
         done += 1;
@@ -314,12 +317,24 @@ impl Backbone {
                 let (y, g) = m.forward(&x, grid)?;
                 x = y;
                 grid = g;
+                check_finite(&x, || {
+                    format!(
+                        "the patch merging into stage {i} produced non-finite values (NaN or \
+                         infinite) from finite input: its weights overflow f32 on this image"
+                    )
+                })?;
             }
             debug_assert_eq!(grid, sg.grid);
             for (j, (block, bg)) in stage.blocks.iter().zip(&sg.blocks).enumerate() {
                 let keep = opts.attention_of == Some((i, j));
                 let (y, attn) = block.forward(&x, bg, keep)?;
                 x = y;
+                check_finite(&x, || {
+                    format!(
+                        "stage {i} block {j} is the first to produce non-finite values (NaN or \
+                         infinite), from finite input: its weights overflow f32 on this image"
+                    )
+                })?;
                 if let Some(weights) = attn {
                     attention = Some(AttentionTap {
                         stage: i,
@@ -352,6 +367,16 @@ impl Backbone {
             (Some(n), true) => Some(n.forward(outs.last().expect("one stage at least"))?),
             _ => None,
         };
+        for (i, t) in stage_norms.iter().flatten().enumerate() {
+            check_finite(t, || {
+                format!("the output norm of stage {i} produced non-finite values")
+            })?;
+        }
+        if let Some(t) = &final_norm {
+            check_finite(t, || {
+                "the final norm produced non-finite values".to_string()
+            })?;
+        }
         Ok(StageOutputs {
             geometry,
             embed,
@@ -360,6 +385,75 @@ impl Backbone {
             final_norm,
             attention,
         })
+    }
+}
+
+/// The missing parts in words: a block with none of its tensors is named once
+/// (`layers.2.blocks.1.*, the whole block`), other tensors one by one, at most 12 entries.
+fn describe_missing(ckpt: &Checkpoint, missing: &[&Part]) -> String {
+    let mut entries: Vec<String> = Vec::new();
+    let mut i = 0;
+    while i < missing.len() {
+        if let Part::Block(s, b, _) = missing[i] {
+            let same: Vec<&&Part> = missing[i..]
+                .iter()
+                .take_while(|p| matches!(p, Part::Block(s2, b2, _) if s2 == s && b2 == b))
+                .collect();
+            if same.len() == BLOCK_PARTS.len() {
+                entries.push(format!(
+                    "{}{s}.blocks.{b}.* (the whole block)",
+                    ckpt.layout.stages_prefix()
+                ));
+                i += same.len();
+                continue;
+            }
+        }
+        entries.push(ckpt.file_names(missing[i]).join(" + "));
+        i += 1;
+    }
+    const SHOWN: usize = 12;
+    let more = entries.len().saturating_sub(SHOWN);
+    entries.truncate(SHOWN);
+    let mut text = entries.join(", ");
+    if more > 0 {
+        text.push_str(&format!(", and {more} more"));
+    }
+    text
+}
+
+/// Bytes of a Mullion process besides its tensors (code, libraries, allocator, thread stacks),
+/// measured as the peak resident memory of a run on a tiny image (see DEVELOPERS.md).
+pub const BASE_BYTES: u64 = 30_000_000;
+
+/// The error for an input of `image` = (height, width) whose run needs `need` bytes (`None`:
+/// too many to count) when `limit` are allowed.
+pub fn check_budget(need: Option<u64>, image: (usize, usize), limit: u64) -> Result<()> {
+    match need {
+        Some(n) if n <= limit => Ok(()),
+        Some(n) => Err(Error::Limit(format!(
+            "a {}x{} input would need about {:.1} GB for this backbone, more than the {:.1} GB \
+             allowed; resize the image or raise the limit (--max-memory-gb)",
+            image.1,
+            image.0,
+            n as f64 / 1e9,
+            limit as f64 / 1e9
+        ))),
+        None => Err(Error::Limit(format!(
+            "a {}x{} input is too large for this backbone to even count its memory; resize \
+             the image",
+            image.1, image.0
+        ))),
+    }
+}
+
+/// An [`Error::NonFinite`] with `what` when `t` holds a NaN or an infinity.
+fn check_finite(t: &Tensor, what: impl FnOnce() -> String) -> Result<()> {
+    match count_non_finite(t)? {
+        Some((count, first, value)) => Err(Error::NonFinite(format!(
+            "{} ({count} value(s); first: {value} at element {first})",
+            what()
+        ))),
+        None => Ok(()),
     }
 }
 
@@ -376,21 +470,7 @@ pub fn required_parts(cfg: &Config) -> Vec<Part> {
             }
         }
         for j in 0..depth {
-            for s in [
-                "norm1.weight",
-                "norm1.bias",
-                "attn.qkv.weight",
-                "attn.qkv.bias",
-                "attn.relative_position_bias_table",
-                "attn.proj.weight",
-                "attn.proj.bias",
-                "norm2.weight",
-                "norm2.bias",
-                "mlp.fc1.weight",
-                "mlp.fc1.bias",
-                "mlp.fc2.weight",
-                "mlp.fc2.bias",
-            ] {
+            for s in BLOCK_PARTS {
                 out.push(Part::block(i, j, s));
             }
         }
@@ -400,9 +480,51 @@ pub fn required_parts(cfg: &Config) -> Vec<Part> {
 
 struct CheckpointWeights<'a>(&'a Checkpoint);
 
+impl CheckpointWeights<'_> {
+    /// A loaded tensor, refused when any of its values is NaN or infinite.
+    fn finite(&self, part: &Part, t: Tensor) -> Result<Tensor> {
+        let bad = count_non_finite(&t)?;
+        if let Some((count, first, value)) = bad {
+            return Err(Error::bad_file(
+                &self.0.path,
+                format!(
+                    "tensor {} holds {count} non-finite value(s) (first: {value} at element \
+                     {first}); the weights are damaged or were saved after training diverged",
+                    self.0.file_names(part).join(" + ")
+                ),
+            ));
+        }
+        Ok(t)
+    }
+}
+
+/// How many elements of `t` are NaN or infinite, with the first one's flat index and value;
+/// `None` when all are finite. Reads the tensor in place when it is a contiguous f32 tensor.
+pub fn count_non_finite(t: &Tensor) -> Result<Option<(usize, usize, f32)>> {
+    fn scan(v: &[f32]) -> Option<(usize, usize, f32)> {
+        let first = v.iter().position(|x| !x.is_finite())?;
+        let count = v[first..].iter().filter(|x| !x.is_finite()).count();
+        Some((count, first, v[first]))
+    }
+    if t.dtype() == candle_core::DType::F32 {
+        let (storage, layout) = t.storage_and_layout();
+        if let (candle_core::Storage::Cpu(cpu), Some((a, b))) =
+            (&*storage, layout.contiguous_offsets())
+        {
+            return Ok(scan(&cpu.as_slice::<f32>()?[a..b]));
+        }
+    }
+    let v: Vec<f32> = t
+        .to_dtype(candle_core::DType::F32)?
+        .flatten_all()?
+        .to_vec1()?;
+    Ok(scan(&v))
+}
+
 impl WeightSource for CheckpointWeights<'_> {
     fn get(&self, part: Part, shape: &[usize]) -> Result<Tensor> {
-        self.0.load(&part, shape)
+        let t = self.0.load(&part, shape)?;
+        self.finite(&part, t)
     }
     fn bias_table(&self, part: Part, heads: usize) -> Result<Tensor> {
         let shape = self.0.shape(&part).unwrap_or_default();
@@ -415,7 +537,8 @@ impl WeightSource for CheckpointWeights<'_> {
                 ),
             ));
         }
-        self.0.load(&part, &shape)
+        let t = self.0.load(&part, &shape)?;
+        self.finite(&part, t)
     }
 }
 

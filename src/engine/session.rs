@@ -12,35 +12,92 @@ use super::model::{Backbone, ForwardOptions, LoadReport, RunControl, StageOutput
 use crate::error::{Error, Result};
 use std::path::{Path, PathBuf};
 
+/// Largest configuration file Mullion reads (bytes); a real one is a few hundred.
+pub const MAX_CONFIG_BYTES: u64 = 1 << 20;
+
 /// Read an explicit configuration file (`None`: nothing overridden). A file that does not parse,
-/// or that asks for a shape no model can have (a stage of depth 0), is the user's argument at
-/// fault and names the file.
+/// or that asks for a shape no model can have (a stage of depth 0, a size beyond the bounds in
+/// [`crate::engine::config`]), is the user's argument at fault and names the file and field.
 pub fn read_override(path: Option<&Path>) -> Result<ConfigOverride> {
+    use super::config::{
+        MAX_BLOCKS_PER_STAGE, MAX_CHANNELS, MAX_HEADS, MAX_MLP_RATIO, MAX_PATCH, MAX_STAGES,
+        MAX_WINDOW,
+    };
     let Some(path) = path else {
         return Ok(ConfigOverride::default());
     };
-    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
-    let over: ConfigOverride = serde_json::from_str(&text)
+    let bytes = crate::io::read_regular(path, MAX_CONFIG_BYTES)
+        .map_err(|e| Error::BadArgument(format!("--config: {e}")))?
+        .ok_or_else(|| Error::BadArgument(format!("--config {}: no such file", path.display())))?;
+    let over: ConfigOverride = serde_json::from_slice(&bytes)
         .map_err(|e| Error::BadArgument(format!("{}: not a valid config: {e}", path.display())))?;
+    let bad =
+        |field: &str, m: String| Error::BadArgument(format!("{}: \"{field}\" {m}", path.display()));
+    let within = |field: &str, v: usize, max: usize| {
+        if v == 0 || v > max {
+            Err(bad(field, format!("is {v}; expected 1 to {max}")))
+        } else {
+            Ok(())
+        }
+    };
     if let Some(depths) = &over.depths {
         if depths.is_empty() {
-            return Err(Error::BadArgument(format!(
-                "{}: \"depths\" is empty; give one block count per stage",
-                path.display()
-            )));
+            return Err(bad(
+                "depths",
+                "is empty; give one block count per stage".into(),
+            ));
+        }
+        if depths.len() > MAX_STAGES {
+            return Err(bad(
+                "depths",
+                format!(
+                    "has {} stages; Mullion runs at most {MAX_STAGES}",
+                    depths.len()
+                ),
+            ));
         }
         if let Some(i) = depths.iter().position(|&d| d == 0) {
-            return Err(Error::BadArgument(format!(
-                "{}: \"depths\" gives stage {i} no block; every stage needs at least one",
-                path.display()
-            )));
+            return Err(bad(
+                "depths",
+                format!("gives stage {i} no block; every stage needs at least one"),
+            ));
+        }
+        for &d in depths {
+            within("depths", d, MAX_BLOCKS_PER_STAGE)?;
         }
     }
-    if over.heads.as_ref().is_some_and(|h| h.contains(&0)) {
-        return Err(Error::BadArgument(format!(
-            "{}: \"heads\" has a zero; every stage needs at least one head",
-            path.display()
-        )));
+    if let Some(heads) = &over.heads {
+        if heads.contains(&0) {
+            return Err(bad(
+                "heads",
+                "has a zero; every stage needs at least one head".into(),
+            ));
+        }
+        if heads.len() > MAX_STAGES {
+            return Err(bad("heads", format!("has more than {MAX_STAGES} entries")));
+        }
+        for &h in heads {
+            within("heads", h, MAX_HEADS)?;
+        }
+    }
+    if let Some(w) = over.window {
+        let (a, b) = w.dims();
+        within("window", a, MAX_WINDOW)?;
+        within("window", b, MAX_WINDOW)?;
+    }
+    if let Some(p) = over.patch {
+        within("patch", p, MAX_PATCH)?;
+    }
+    if let Some(c) = over.embed_dim {
+        within("embed_dim", c, MAX_CHANNELS)?;
+    }
+    if let Some(r) = over.mlp_ratio {
+        if !(r > 0.0 && r <= MAX_MLP_RATIO) {
+            return Err(bad(
+                "mlp_ratio",
+                format!("is {r}; expected above 0 and at most {MAX_MLP_RATIO}"),
+            ));
+        }
     }
     Ok(over)
 }
@@ -137,30 +194,55 @@ impl Session {
         })
     }
 
-    /// Decode, check and run one image.
+    /// Peak bytes of running an image with this header: the process, the weights, and the
+    /// larger of decoding (see [`input::ImageHeader::decode_peak_bytes`]) and the forward pass
+    /// (see [`Backbone::forward_peak_bytes`]). `None` when too large to count.
+    pub fn estimate_run_bytes(&self, header: &input::ImageHeader) -> Option<u64> {
+        let dims = (header.height as usize, header.width as usize);
+        let forward = self.model.forward_peak_bytes(dims, Some(self.semantics))?;
+        super::model::BASE_BYTES
+            .checked_add(self.model.weight_bytes())?
+            .checked_add(forward.max(header.decode_peak_bytes()?))
+    }
+
+    /// Decode, check and run one image. The memory a run needs is estimated from the image's
+    /// header and checked against the limit before any pixel is decoded.
     pub fn run_image(
         &self,
         path: &Path,
         stage_norms: bool,
         final_norm: bool,
     ) -> Result<StageOutputs> {
-        let img = input::load_image(path)?;
-        let (w, h) = img.dimensions();
-        let dims = (h as usize, w as usize);
-        self.model
-            .check_memory(dims, Some(self.semantics), self.memory_limit)
-            .map_err(|e| match e {
-                Error::Limit(m) => Error::Limit(format!("{}: {m}", path.display())),
-                other => other,
-            })?;
-        let x = input::normalise(&img, &self.norm)?;
+        let check = |h: &input::ImageHeader| {
+            let dims = (h.height as usize, h.width as usize);
+            super::model::check_budget(self.estimate_run_bytes(h), dims, self.memory_limit).map_err(
+                |e| match e {
+                    Error::Limit(m) => Error::Limit(format!("{}: {m}", path.display())),
+                    other => other,
+                },
+            )
+        };
+        // The decoded image is dropped once normalised; only the f32 input stays.
+        let x = {
+            let img = input::load_image_within(path, check)?;
+            input::normalise(&img, &self.norm)?
+        };
         let opts = ForwardOptions {
             semantics: Some(self.semantics),
             stage_norms,
             final_norm,
             attention_of: None,
         };
-        self.model.forward(&x, &opts, &RunControl::default())
+        self.model
+            .forward(&x, &opts, &RunControl::default())
+            .map_err(|e| match e {
+                Error::NonFinite(m) => Error::NonFinite(format!(
+                    "{}: {m} (checkpoint {})",
+                    path.display(),
+                    self.options.weights.display()
+                )),
+                other => other,
+            })
     }
 
     /// The checkpoint's file name, for captions and tables.

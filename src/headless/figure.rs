@@ -2,8 +2,7 @@
 //! per-stage statistics of its scalar map.
 
 use crate::analysis::{
-    prepare_stages, stage_stats, write_stats_csv, write_stats_json, Colormap, MapKind, ScaleSpec,
-    TokenNorm,
+    prepare_stages, stage_stats, stats_csv, stats_json, Colormap, MapKind, ScaleSpec, TokenNorm,
 };
 use crate::engine::input::load_image;
 use crate::engine::{Session, SessionOptions};
@@ -62,8 +61,9 @@ pub struct FigureOutcome {
 }
 
 /// Run the image, prepare every stage's map, save the figure and any statistics. Arguments are
-/// checked before the checkpoint is opened, and the statistics are computed before anything is
-/// written, so a failure leaves no half of the outputs behind.
+/// checked before the checkpoint is opened (no output may be an input or another output, or
+/// anything but a new or regular file), and every output is made in memory before the first is
+/// written, so a failure leaves none of them behind.
 pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
     let kind = opts.map.as_ref();
     opts.spec.validate()?;
@@ -73,9 +73,34 @@ pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
             "--stats/--csv need a scalar map (norm or channel:N); pca gives colours".into(),
         ));
     }
+    let mut inputs = vec![
+        ("--weights", opts.session.weights.as_path()),
+        ("--image", opts.image.as_path()),
+    ];
+    if let Some(c) = &opts.session.config {
+        inputs.push(("--config", c.as_path()));
+    }
+    let mut outputs = vec![("--out", opts.out.as_path())];
+    if let Some(p) = &opts.stats {
+        outputs.push(("--stats", p.as_path()));
+    }
+    if let Some(p) = &opts.csv {
+        outputs.push(("--csv", p.as_path()));
+    }
+    crate::io::check_outputs(&inputs, &outputs)?;
     let session = Session::open(&opts.session)?;
-    let image = load_image(&opts.image)?;
+    let depths = &session.model.config.depths;
+    let deepest = depths.iter().copied().max().unwrap_or(0);
+    if opts.overlays.block >= deepest {
+        return Err(Error::BadArgument(format!(
+            "--stage-block {}: this checkpoint's stages have {depths:?} blocks, so the block \
+             is 0 to {}",
+            opts.overlays.block,
+            deepest.saturating_sub(1)
+        )));
+    }
     let out = session.run_image(&opts.image, false, false)?;
+    let image = load_image(&opts.image)?;
     let (raw, stages) = prepare_stages(&out, kind, &opts.spec)?;
     let stats = if opts.stats.is_some() || opts.csv.is_some() {
         Some(stage_stats(&kind.id(), &raw, &out.geometry)?)
@@ -101,14 +126,20 @@ pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
         notes,
         text_px: render::figure_text_px(scale),
     })?;
+    let json = match (&stats, &opts.stats) {
+        (Some(st), Some(_)) => Some(stats_json(st)?),
+        _ => None,
+    };
+    let csv = match (&stats, &opts.csv) {
+        (Some(st), Some(_)) => Some(stats_csv(st)?),
+        _ => None,
+    };
     crate::io::save_png_atomic(&fig, &opts.out)?;
-    if let Some(stats) = &stats {
-        if let Some(p) = &opts.stats {
-            write_stats_json(stats, p)?;
-        }
-        if let Some(p) = &opts.csv {
-            write_stats_csv(stats, p)?;
-        }
+    if let (Some(text), Some(p)) = (&json, &opts.stats) {
+        crate::io::write_text_atomic(p, text)?;
+    }
+    if let (Some(text), Some(p)) = (&csv, &opts.csv) {
+        crate::io::write_text_atomic(p, text)?;
     }
     Ok(FigureOutcome {
         width: fig.width(),

@@ -2,10 +2,13 @@
 //! region, how strongly each stage responds inside it compared with the rest of the image.
 //!
 //! Images go one at a time (one forward pass in memory). Each finished image leaves a small
-//! record in `OUT/.done/`, keyed by everything its numbers depend on (checkpoint, settings,
-//! image and sidecar), so a rerun after an interruption or after adding images only computes
-//! what is new or changed. `regions.csv` and `summary.json` are rewritten whole at the end of
-//! every run, through temporary files and renames.
+//! record in `OUT/.done/`, keyed by everything its numbers depend on (the BLAKE3 content hashes
+//! of the checkpoint, the configuration file, the image and the sidecar, every option that
+//! changes a number, and Mullion's version), so a rerun after an interruption or after adding
+//! images only computes what is new or changed, and a file replaced by another of the same
+//! size and time stamp is computed again. `regions.csv` and `summary.json` are rewritten whole
+//! at the end of every run, through temporary files and renames. A run holds an exclusive lock
+//! on `OUT` (see [`crate::io::lock_folder`]); a second run on the same folder is refused.
 
 use crate::analysis::{
     prepare_stages, region_stats, Colormap, Map, MapKind, PreparedStage, RegionStats, ScaleSpec,
@@ -14,7 +17,7 @@ use crate::analysis::{
 use crate::annotation::{self, Sidecar};
 use crate::engine::{Session, SessionOptions};
 use crate::error::{Error, Result};
-use crate::io::{file_name, list_images, write_text_atomic};
+use crate::io::{file_name, hash_bytes, list_images, write_text_atomic, ContentHashes};
 use crate::render::{self, FigureSpec, Overlays};
 use indicatif::{ProgressBar, ProgressStyle};
 use serde::{Deserialize, Serialize};
@@ -47,6 +50,54 @@ pub struct ReportOptions {
     pub figures: bool,
     /// Recompute every image, even those already done with the same inputs.
     pub force: bool,
+    /// Do only this shard's images, in `OUT/shard-K-of-N/` (see [`Shard`]).
+    pub shard: Option<Shard>,
+}
+
+/// Most shards a report may be split into.
+pub const MAX_SHARDS: u32 = 100_000;
+
+/// One of `count` parts of a folder of images: image `name` belongs to shard `index` (1-based)
+/// when the first 64 bits of the BLAKE3 hash of its path relative to the image folder, modulo
+/// `count`, are `index - 1`. The split depends on nothing but the names, so every machine of an
+/// array job computes the same one.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Shard {
+    pub index: u32,
+    pub count: u32,
+}
+
+impl Shard {
+    /// Shard `index` of `count`: `1 <= index <= count <= MAX_SHARDS`.
+    pub fn new(index: u32, count: u32) -> Result<Shard> {
+        if count == 0 || count > MAX_SHARDS || index == 0 || index > count {
+            return Err(Error::BadArgument(format!(
+                "shard {index}/{count}: expected K/N with 1 <= K <= N <= {MAX_SHARDS}"
+            )));
+        }
+        Ok(Shard { index, count })
+    }
+
+    /// The folder (inside `--out`) this shard writes: `shard-K-of-N`.
+    pub fn dir_name(&self) -> String {
+        format!("shard-{}-of-{}", self.index, self.count)
+    }
+
+    /// Whether the image at `relative` (its path relative to the image folder) is this shard's.
+    pub fn contains(&self, relative: &str) -> bool {
+        crate::io::hash_u64(relative.as_bytes()) % self.count as u64 == (self.index - 1) as u64
+    }
+}
+
+/// What a shard's `summary.json` says about the split and the run's settings, so a merge can
+/// check that its shards belong together.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ShardInfo {
+    pub index: u32,
+    pub count: u32,
+    /// Everything the numbers depend on besides the images: content hashes of the checkpoint
+    /// and configuration file, map, padding semantics, normalisation, Mullion's version.
+    pub settings: String,
 }
 
 impl ReportOptions {
@@ -60,6 +111,15 @@ impl ReportOptions {
             map: std::sync::Arc::new(crate::analysis::TokenNorm),
             figures: false,
             force: false,
+            shard: None,
+        }
+    }
+
+    /// The folder this run writes: `out`, or `out/shard-K-of-N` for a shard.
+    pub fn out_dir(&self) -> PathBuf {
+        match &self.shard {
+            Some(s) => self.out.join(s.dir_name()),
+            None => self.out.clone(),
         }
     }
 }
@@ -119,12 +179,17 @@ pub struct Summary {
     pub without_regions: Vec<String>,
     /// Changes made to sidecars on reading (clipping and the like), prefixed by the image.
     pub warnings: Vec<String>,
+    /// For a shard of a split run (`--shard K/N`): which one, and the settings it ran with.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shard: Option<ShardInfo>,
 }
 
 /// What a run did, for callers and tests.
 #[derive(Clone, Debug, PartialEq)]
 pub struct ReportOutcome {
     pub csv: PathBuf,
+    /// Where `summary.json` went.
+    pub summary_path: PathBuf,
     pub summary: Summary,
     /// Image file names computed in this run, in order.
     pub computed: Vec<String>,
@@ -134,40 +199,18 @@ pub struct ReportOutcome {
     pub rows: usize,
 }
 
-/// Size and modification time of a file, to notice when it changed.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-struct FileStamp {
-    path: String,
-    len: u64,
-    modified_ns: Option<u128>,
-}
-
-impl FileStamp {
-    fn of(path: &Path) -> Result<Self> {
-        let m = std::fs::metadata(path).map_err(|e| Error::io(path, e))?;
-        let abs = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_path_buf());
-        Ok(FileStamp {
-            path: abs.to_string_lossy().into_owned(),
-            len: m.len(),
-            modified_ns: m
-                .modified()
-                .ok()
-                .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
-                .map(|d| d.as_nanos()),
-        })
-    }
-}
-
-/// Everything one image's numbers depend on.
+/// Everything one image's numbers depend on. Files enter by their content (BLAKE3), never by
+/// their time stamp or path, so a replaced file is noticed and a moved folder is not.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 struct Inputs {
+    /// The Mullion version that computed the rows (a new one may compute them differently).
+    mullion: String,
     map: String,
-    weights: FileStamp,
-    config: Option<FileStamp>,
+    weights: String,
+    config: Option<String>,
     semantics: String,
     normalisation: String,
-    image: FileStamp,
-    /// FNV-1a of the sidecar's bytes; the content matters, not its time stamp.
+    image: String,
     sidecar: String,
 }
 
@@ -179,17 +222,6 @@ struct Record {
     /// The image's rows as CSV text with a header: CSV keeps every f64 exactly (shortest
     /// round-trip digits, read back with the standard parser).
     csv: String,
-}
-
-/// 64-bit FNV-1a, a stable content hash (the standard library's hasher may change between
-/// releases, which would needlessly invalidate every record).
-fn fnv1a(bytes: &[u8]) -> String {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
-    for &b in bytes {
-        h ^= b as u64;
-        h = h.wrapping_mul(0x0100_0000_01b3);
-    }
-    format!("{h:016x}")
 }
 
 fn rows_to_csv(rows: &[ReportRow]) -> Result<String> {
@@ -211,6 +243,14 @@ fn csv_to_rows(text: &str) -> std::result::Result<Vec<ReportRow>, csv::Error> {
 pub fn read_rows(path: &Path) -> Result<Vec<ReportRow>> {
     let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
     csv_to_rows(&text).map_err(|e| Error::bad_file(path, format!("not a region table: {e}")))
+}
+
+/// Read a `summary.json` written by this command.
+pub fn read_summary(path: &Path) -> Result<Summary> {
+    let bytes = crate::io::read_regular(path, 1 << 30)?
+        .ok_or_else(|| Error::bad_file(path, "missing: is this a finished report folder?"))?;
+    serde_json::from_slice(&bytes)
+        .map_err(|e| Error::bad_file(path, format!("not a report summary: {e}")))
 }
 
 /// A record that exists, parses and has the given inputs.
@@ -252,7 +292,7 @@ impl Welford {
 }
 
 #[derive(Default)]
-struct Group {
+pub struct Group {
     count: usize,
     images: usize,
     last_image: Option<String>,
@@ -261,12 +301,12 @@ struct Group {
     auroc: Welford,
 }
 
-/// Per-(label, stage) accumulators over all rows of the run.
+/// Per-(label, stage) accumulators over all rows of the run, fed image by image.
 #[derive(Default)]
-struct Groups(BTreeMap<(String, usize), Group>);
+pub struct Groups(BTreeMap<(String, usize), Group>);
 
 impl Groups {
-    fn push(&mut self, r: &ReportRow) {
+    pub fn push(&mut self, r: &ReportRow) {
         let g = self.0.entry((r.label.clone(), r.stage)).or_default();
         g.count += 1;
         if g.last_image.as_deref() != Some(r.image.as_str()) {
@@ -278,7 +318,7 @@ impl Groups {
         g.ratio.push(r.ratio);
         g.auroc.push(r.auroc);
     }
-    fn finish(self) -> Vec<GroupSummary> {
+    pub fn finish(self) -> Vec<GroupSummary> {
         self.0
             .into_iter()
             .map(|((label, stage), g)| GroupSummary {
@@ -306,14 +346,16 @@ struct Context<'a> {
     session: Session,
     done_dir: PathBuf,
     figures_dir: Option<PathBuf>,
-    weights: FileStamp,
-    config: Option<FileStamp>,
+    hashes: ContentHashes,
+    weights: String,
+    config: Option<String>,
 }
 
 impl Context<'_> {
     fn inputs(&self, image: &Path, sidecar_bytes: &[u8]) -> Result<Inputs> {
         let s = &self.session;
         Ok(Inputs {
+            mullion: env!("CARGO_PKG_VERSION").to_string(),
             map: self.args.map.id(),
             weights: self.weights.clone(),
             config: self.config.clone(),
@@ -323,9 +365,25 @@ impl Context<'_> {
                 s.semantics.small_stage.name()
             ),
             normalisation: format!("mean {:?} std {:?}", s.norm.mean, s.norm.std),
-            image: FileStamp::of(image)?,
-            sidecar: fnv1a(sidecar_bytes),
+            image: self.hashes.hash(image)?,
+            sidecar: hash_bytes(sidecar_bytes),
         })
+    }
+
+    /// The settings every image's key shares, in one line (a merge compares shards by it).
+    fn settings(&self) -> String {
+        let s = &self.session;
+        format!(
+            "mullion {} map {} weights {} config {} semantics {}/{} mean {:?} std {:?}",
+            env!("CARGO_PKG_VERSION"),
+            self.args.map.id(),
+            self.weights,
+            self.config.as_deref().unwrap_or("none"),
+            s.semantics.pad_order.name(),
+            s.semantics.small_stage.name(),
+            s.norm.mean,
+            s.norm.std
+        )
     }
 
     fn process(&self, image: &Path) -> Result<Done> {
@@ -336,8 +394,9 @@ impl Context<'_> {
             .figures_dir
             .as_ref()
             .map(|d| d.join(format!("{name}.figure.png")));
-        // A sidecar that is there but unreadable is handled (and moved aside) by the loader.
-        let bytes = std::fs::read(&sidecar_path).ok();
+        // A sidecar that is there but unreadable is handled (and moved aside) by the loader;
+        // one that is not a regular file (a FIFO would block the read) fails here, untouched.
+        let bytes = annotation::read_bytes(&sidecar_path)?;
         if let (false, Some(b)) = (self.args.force, &bytes) {
             let inputs = self.inputs(image, b)?;
             let figure_ok = figure_path.as_ref().is_none_or(|p| p.is_file());
@@ -451,7 +510,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             return Err(Error::bad_file(d, "--regions: not a folder"));
         }
     }
-    let images = list_images(&args.images)?;
+    let mut images = list_images(&args.images)?;
     if images.is_empty() {
         return Err(Error::bad_file(
             &args.images,
@@ -461,25 +520,49 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             ),
         ));
     }
-    let done_dir = args.out.join(DONE_DIR);
+    if let Some(shard) = &args.shard {
+        // An empty shard (more shards than images) is a valid, empty result.
+        images.retain(|p| shard.contains(&file_name(p)));
+    }
+    let out_dir = args.out_dir();
+    let csv_path = out_dir.join(CSV_NAME);
+    let summary_path = out_dir.join(SUMMARY_NAME);
+    let mut inputs = vec![("--weights", args.session.weights.as_path())];
+    if let Some(c) = &args.session.config {
+        inputs.push(("--config", c.as_path()));
+    }
+    crate::io::check_outputs(
+        &inputs,
+        &[
+            ("--out", csv_path.as_path()),
+            ("--out", summary_path.as_path()),
+        ],
+    )?;
+    // Held until the run returns: a second run on this folder is refused, not interleaved.
+    let _lock = crate::io::lock_folder(&out_dir)?;
+    let done_dir = out_dir.join(DONE_DIR);
     std::fs::create_dir_all(&done_dir).map_err(|e| Error::io(&done_dir, e))?;
-    let figures_dir = args.figures.then(|| args.out.join(FIGURES_DIR));
+    let figures_dir = args.figures.then(|| out_dir.join(FIGURES_DIR));
     if let Some(d) = &figures_dir {
         std::fs::create_dir_all(d).map_err(|e| Error::io(d, e))?;
     }
     let session = Session::open(&args.session)?;
+    let hashes = ContentHashes::default();
+    let weights = hashes.hash(&args.session.weights)?;
+    let config = args
+        .session
+        .config
+        .as_deref()
+        .map(|c| hashes.hash(c))
+        .transpose()?;
     let ctx = Context {
         args,
         session,
         done_dir,
         figures_dir,
-        weights: FileStamp::of(&args.session.weights)?,
-        config: args
-            .session
-            .config
-            .as_deref()
-            .map(FileStamp::of)
-            .transpose()?,
+        hashes,
+        weights,
+        config,
     };
 
     let pb = progress_bar(images.len());
@@ -490,7 +573,6 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let mut without_regions = Vec::new();
     let mut warnings = Vec::new();
     let mut n_rows = 0usize;
-    let csv_path = args.out.join(CSV_NAME);
     crate::io::write_atomic(&csv_path, |tmp| {
         let csv_err = |e: csv::Error| Error::bad_file(&csv_path, format!("cannot write: {e}"));
         // The header is written by hand so it goes out even when no image gives a row.
@@ -554,13 +636,19 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
         failed,
         without_regions,
         warnings,
+        shard: args.shard.map(|s| ShardInfo {
+            index: s.index,
+            count: s.count,
+            settings: ctx.settings(),
+        }),
     };
     let mut text =
         serde_json::to_string_pretty(&summary).map_err(|e| Error::Internal(e.to_string()))?;
     text.push('\n');
-    write_text_atomic(&args.out.join(SUMMARY_NAME), &text)?;
+    write_text_atomic(&summary_path, &text)?;
     Ok(ReportOutcome {
         csv: csv_path,
+        summary_path,
         summary,
         computed,
         reused,

@@ -250,6 +250,25 @@ pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
         .first()
         .map_or((None, None), |s| style.overlays.blocks(s));
     let pair = (style.overlays.block / 2) * 2;
+    // The pair each stage really draws (a stage with fewer blocks draws its last pair).
+    let drawn: Vec<usize> = g
+        .stages
+        .iter()
+        .map(|s| (style.overlays.block.min(s.blocks.len().saturating_sub(1)) / 2) * 2)
+        .collect();
+    let per_stage = if drawn.iter().all(|&b| b == pair) {
+        String::new()
+    } else {
+        let list: Vec<String> = drawn
+            .iter()
+            .enumerate()
+            .map(|(i, b)| format!("stage {i}: {b}"))
+            .collect();
+        format!(
+            "; stages with fewer blocks draw their last pair ({})",
+            list.join(", ")
+        )
+    };
     let mut caption: Vec<String> = vec![
         format!("checkpoint {}", spec.checkpoint),
         format!(
@@ -272,7 +291,10 @@ pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
     }
     let mut key: Vec<(String, [u8; 3])> = Vec::new();
     if style.overlays.regular_grid && regular.is_some() {
-        key.push((format!("regular windows (block {pair})"), REGULAR_GRID));
+        key.push((
+            format!("regular windows (block {pair}{per_stage})"),
+            REGULAR_GRID,
+        ));
     }
     if style.overlays.shifted_grid
         && (shifted.is_some()

@@ -7,6 +7,7 @@ mod architecture;
 mod bad_input;
 mod commands;
 mod demo;
+mod hardening;
 mod real_window;
 mod reference_outputs;
 mod regions;

@@ -372,11 +372,23 @@ fn expect_unreadable(dir: &Path, bytes: &[u8], problem: &str) -> String {
 fn sidecar_schema_and_version_are_checked() {
     let dir = tempfile::tempdir().unwrap();
     let good = annotation::to_json(&sample_sidecar()).unwrap();
+    // A newer version is a newer Mullion's file: refused, left in place, never moved.
     let newer = good.replace("\"version\": 1", "\"version\": 2");
     assert_ne!(newer, good);
-    expect_unreadable(dir.path(), newer.as_bytes(), "newer");
+    let path = dir.path().join("x.png.regions.json");
+    std::fs::write(&path, &newer).unwrap();
+    let err = annotation::load(&path).unwrap_err().to_string();
+    assert!(
+        err.contains("newer") && err.contains("left in place"),
+        "{err}"
+    );
+    assert_eq!(std::fs::read_to_string(&path).unwrap(), newer);
+    assert!(unreadable_copies(dir.path()).is_empty());
+    std::fs::remove_file(&path).unwrap();
     let other = good.replace("mullion-regions", "someone-else");
     expect_unreadable(dir.path(), other.as_bytes(), "schema is 'someone-else'");
+    let older = good.replace("\"version\": 1", "\"version\": 0");
+    expect_unreadable(dir.path(), older.as_bytes(), "unknown schema version 0");
     let names = unreadable_copies(dir.path());
     assert!(names[0].ends_with("x.png.regions.json.unreadable"));
     assert!(names[1].ends_with("x.png.regions.json.unreadable-2"));
