@@ -44,12 +44,46 @@ pub fn file_name(path: &Path) -> String {
     )
 }
 
-/// Image files directly inside `dir` (sub-folders are not searched), sorted by name.
+/// The ending of every figure Mullion saves.
+pub const FIGURE_SUFFIX: &str = ".figure.png";
+
+/// The one name of a figure of `image` with map `map_id`: `<stem>.<map>.figure.png` (a `:` in
+/// the map id becomes `-`). The window, the report and the comparison all name figures so.
+pub fn figure_file_name(image: &Path, map_id: &str) -> String {
+    let stem = image
+        .file_stem()
+        .map_or_else(|| "image".into(), |s| s.to_string_lossy().into_owned());
+    format!("{stem}.{}{FIGURE_SUFFIX}", map_id.replace(':', "-"))
+}
+
+/// Whether `path` is a figure Mullion saved (so it is not listed as an input image).
+pub fn is_own_output(path: &Path) -> bool {
+    path.file_name().is_some_and(|n| {
+        n.to_string_lossy()
+            .to_ascii_lowercase()
+            .ends_with(FIGURE_SUFFIX)
+    })
+}
+
+/// Figures are written as PNG only: refuse any other ending before any work is done.
+pub fn check_png_path(path: &Path) -> Result<()> {
+    if has_extension(path, &["png"]) {
+        Ok(())
+    } else {
+        Err(Error::BadArgument(format!(
+            "{}: figures are saved as PNG; give a file name ending in .png",
+            path.display()
+        )))
+    }
+}
+
+/// Image files directly inside `dir` (sub-folders are not searched), sorted by name; figures
+/// Mullion saved there are left out.
 pub fn list_images(dir: &Path) -> Result<Vec<PathBuf>> {
     let rd = std::fs::read_dir(dir).map_err(|e| Error::io(dir, e))?;
     let mut out: Vec<PathBuf> = rd
         .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.is_file() && is_image_path(p))
+        .filter(|p| p.is_file() && is_image_path(p) && !is_own_output(p))
         .collect();
     out.sort();
     Ok(out)
@@ -380,8 +414,9 @@ pub fn write_text_atomic(path: &Path, text: &str) -> Result<()> {
     })
 }
 
-/// Save an image as PNG atomically.
+/// Save an image as PNG atomically (the path must end in `.png`).
 pub fn save_png_atomic(img: &image::RgbaImage, path: &Path) -> Result<()> {
+    check_png_path(path)?;
     write_atomic(path, |tmp| {
         img.save_with_format(tmp, image::ImageFormat::Png)
             .map_err(|e| Error::bad_file(path, format!("cannot write the PNG: {e}")))
@@ -403,6 +438,16 @@ pub fn save_tensors(tensors: &HashMap<String, Tensor>, out: &Path) -> Result<()>
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn figures_have_one_name_and_are_not_inputs() {
+        let name = figure_file_name(Path::new("trays/a.b.png"), "channel:4");
+        assert_eq!(name, "a.b.channel-4.figure.png");
+        assert!(is_own_output(Path::new(&name)));
+        assert!(!is_own_output(Path::new("a.png")));
+        assert!(check_png_path(Path::new("x.jpg")).is_err());
+        assert!(check_png_path(Path::new("x.PNG")).is_ok());
+    }
 
     #[test]
     fn extensions_ignore_case() {

@@ -25,7 +25,7 @@ pub use kinds::{
 pub use map::{stage_tokens, Map, MapKind, Tokens};
 pub use pca::{fit_pca, Pca, PcaFit};
 pub use prepare::{prepare_stages, PreparedStage};
-pub use region_stats::{region_stats, token_weights, RegionStats, INSIDE_WEIGHT};
+pub use region_stats::{region_stats, rows_csv, token_weights, RegionStats, INSIDE_WEIGHT};
 pub use scale::{normalise_maps, percentile, ScaleRange, ScaleSpec};
 pub use stats::{
     stage_stats, stats_csv, stats_json, write_stats_csv, write_stats_json, StageStats,

@@ -53,6 +53,9 @@ pub struct RegionStats {
     pub auroc: Option<f64>,
     /// Tokens with weight >= 0.5.
     pub tokens: usize,
+    /// The other image tokens (the AUROC's second group); not a `regions.csv` column.
+    #[serde(skip)]
+    pub outside_tokens: usize,
     /// `Σ w` over the number of image tokens.
     pub coverage: f64,
 }
@@ -71,6 +74,21 @@ pub const CSV_COLUMNS: [&str; 11] = [
     "tokens",
     "coverage",
 ];
+
+/// Rows as CSV text: the [`CSV_COLUMNS`] header (also when there is no row), then one line per
+/// row, every f64 in its shortest exact form.
+pub fn rows_csv(rows: &[RegionStats]) -> Result<String> {
+    let internal = |e: csv::Error| Error::Internal(e.to_string());
+    let mut w = csv::WriterBuilder::new()
+        .has_headers(false)
+        .from_writer(Vec::new());
+    w.write_record(CSV_COLUMNS).map_err(internal)?;
+    for r in rows {
+        w.serialize(r).map_err(internal)?;
+    }
+    let bytes = w.into_inner().map_err(|e| Error::Internal(e.to_string()))?;
+    String::from_utf8(bytes).map_err(|e| Error::Internal(e.to_string()))
+}
 
 /// Per token of `stage` (row-major over `stage.grid`), the fraction of its footprint inside
 /// `image` (height, width) that `shape` covers. Tokens with an empty footprint get 0.
@@ -106,7 +124,7 @@ fn has_footprint(stage: &StageGeometry, r: usize, c: usize, image: (usize, usize
 
 /// Statistics of one region from its token weights and the map values of the same stage
 /// (both row-major over the grid); `image_token[i]` says whether token `i` has a footprint.
-/// Returns inside mean, outside mean, ratio, AUROC, tokens inside and coverage.
+/// Returns inside mean, outside mean, ratio, AUROC, tokens inside and outside, and coverage.
 #[allow(clippy::type_complexity)]
 fn stats_from_weights(
     weights: &[f64],
@@ -117,7 +135,7 @@ fn stats_from_weights(
     Option<f64>,
     Option<f64>,
     Option<f64>,
-    usize,
+    (usize, usize),
     f64,
 ) {
     let (mut sw, mut swv, mut sow, mut sowv) = (0.0f64, 0.0f64, 0.0f64, 0.0f64);
@@ -156,7 +174,7 @@ fn stats_from_weights(
         outside_mean,
         ratio,
         auroc(&inside, &outside),
-        inside.len(),
+        (inside.len(), outside.len()),
         coverage,
     )
 }
@@ -208,7 +226,7 @@ pub fn region_stats(
     for region in regions {
         for (stage, values, real) in &per_stage {
             let w = token_weights(stage, g.image, &region.shape);
-            let (inside_mean, outside_mean, ratio, auroc, tokens, coverage) =
+            let (inside_mean, outside_mean, ratio, auroc, (tokens, outside_tokens), coverage) =
                 stats_from_weights(&w, values, real);
             rows.push(RegionStats {
                 image: image.to_string(),
@@ -221,6 +239,7 @@ pub fn region_stats(
                 ratio,
                 auroc,
                 tokens,
+                outside_tokens,
                 coverage,
             });
         }
@@ -245,6 +264,7 @@ mod tests {
             ratio: None,
             auroc: Some(0.75),
             tokens: 4,
+            outside_tokens: 12,
             coverage: 0.25,
         };
         let mut w = csv::Writer::from_writer(Vec::new());

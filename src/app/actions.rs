@@ -63,6 +63,8 @@ pub enum Action {
     Rerun,
     CancelRun,
     SaveFigure,
+    /// The region statistics table as CSV.
+    SaveTable,
     ToggleHelp,
     ShowLoadReport(bool),
     ClearMessages,

@@ -21,6 +21,8 @@ pub struct ExportRequest {
     pub policy: String,
     pub checkpoint: String,
     pub paths: ExportPaths,
+    /// The region statistics of the maps on screen (written beside the figure when any).
+    pub rows: Vec<crate::analysis::RegionStats>,
 }
 
 /// The files one save writes.
@@ -29,19 +31,21 @@ pub struct ExportPaths {
     pub png: PathBuf,
     pub stats_json: PathBuf,
     pub stats_csv: PathBuf,
+    /// The region statistics table, as the report's `regions.csv` rows.
+    pub regions_csv: PathBuf,
 }
 
 impl ExportPaths {
-    /// `<stem>.<map>.figure.png` and the statistics beside it, in `dir`.
+    /// `<stem>.<map>.figure.png` ([`crate::io::figure_file_name`]) and the statistics and
+    /// the region table beside it, in `dir`.
     pub fn new(dir: &Path, image: &Path, map_id: &str) -> ExportPaths {
-        let stem = image
-            .file_stem()
-            .map_or_else(|| "image".into(), |s| s.to_string_lossy().into_owned());
-        let id = map_id.replace(':', "-");
+        let png = crate::io::figure_file_name(image, map_id);
+        let base = png.trim_end_matches(crate::io::FIGURE_SUFFIX).to_string();
         ExportPaths {
-            png: dir.join(format!("{stem}.{id}.figure.png")),
-            stats_json: dir.join(format!("{stem}.{id}.stats.json")),
-            stats_csv: dir.join(format!("{stem}.{id}.stats.csv")),
+            png: dir.join(png),
+            stats_json: dir.join(format!("{base}.stats.json")),
+            stats_csv: dir.join(format!("{base}.stats.csv")),
+            regions_csv: dir.join(format!("{base}.regions.csv")),
         }
     }
 }
@@ -100,6 +104,12 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
     if let Some(stats) = &stats {
         write_stats_json(stats, &req.paths.stats_json)?;
         write_stats_csv(stats, &req.paths.stats_csv)?;
+    }
+    if !req.rows.is_empty() {
+        crate::io::write_text_atomic(
+            &req.paths.regions_csv,
+            &crate::analysis::rows_csv(&req.rows)?,
+        )?;
     }
     Ok(Exported {
         png: req.paths.png.clone(),

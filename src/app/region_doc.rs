@@ -37,6 +37,8 @@ pub struct RegionDoc {
     last_note: Option<u64>,
     /// The label list of the image closed last, for a new image without a region file.
     carry_labels: Vec<crate::annotation::LabelDef>,
+    /// The folder of the region file the carried labels came from.
+    carry_from: Option<PathBuf>,
 }
 
 impl Default for RegionDoc {
@@ -56,6 +58,7 @@ impl Default for RegionDoc {
             highlight_for: None,
             last_note: None,
             carry_labels: Vec::new(),
+            carry_from: None,
         }
     }
 }
@@ -89,7 +92,15 @@ impl RegionDoc {
         if let Some(prev) = &self.sidecar {
             self.carry_labels = prev.labels.clone();
         }
-        let carry = std::mem::take(&mut self.carry_labels);
+        // A label list carries over only within one folder of region files, so one project's
+        // names (the demo's, say) do not turn up in another's images.
+        let same_folder = self.carry_from.as_deref() == path.parent();
+        let carry = if same_folder {
+            std::mem::take(&mut self.carry_labels)
+        } else {
+            Vec::new()
+        };
+        self.carry_from = path.parent().map(Path::to_path_buf);
         let fresh = |labels: Vec<crate::annotation::LabelDef>| {
             let mut sc = Sidecar::new(image_name.clone(), size.0, size.1);
             sc.labels = labels;
@@ -375,6 +386,33 @@ mod tests {
             x1: x + 20.0,
             y1: 30.0,
         }
+    }
+
+    #[test]
+    fn labels_carry_over_within_a_folder_only() {
+        let mut d = doc();
+        let _ = d.apply(RegionEdit::DefineLabel("weed".into()));
+        let dir = d.path.as_ref().unwrap().parent().unwrap().to_path_buf();
+        d.close();
+        let _ = d.open(
+            dir.join("b.png.regions.json"),
+            Ok(None),
+            "b.png".into(),
+            (10, 10),
+        );
+        assert_eq!(d.sidecar.as_ref().unwrap().labels.len(), 1, "same folder");
+        d.close();
+        let other = dir.join("elsewhere");
+        let _ = d.open(
+            other.join("c.png.regions.json"),
+            Ok(None),
+            "c.png".into(),
+            (10, 10),
+        );
+        assert!(
+            d.sidecar.as_ref().unwrap().labels.is_empty(),
+            "another folder"
+        );
     }
 
     #[test]

@@ -1,6 +1,7 @@
 //! What the window remembers between runs: plain data only (eframe storage, `serde(default)`).
 
 use crate::analysis::ScaleSpec;
+use crate::engine::geometry::{PadOrder, Semantics, SmallStage};
 use crate::engine::input::{InputPolicy, Normalisation};
 use crate::render::Overlays;
 use serde::{Deserialize, Serialize};
@@ -9,7 +10,16 @@ use std::path::PathBuf;
 #[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 #[serde(default)]
 pub struct Settings {
+    /// Not kept between runs: a large fixed size would make the next start slow before the
+    /// window could show why.
+    #[serde(skip)]
     pub policy: InputPolicy,
+    /// Padding order and small-stage rule; `None`: the checkpoint layout's own. Not kept
+    /// between runs (they belong to one checkpoint).
+    #[serde(skip)]
+    pub pad_order: Option<PadOrder>,
+    #[serde(skip)]
+    pub small_stage: Option<SmallStage>,
     pub norm: Normalisation,
     pub map_kind: String,
     pub channel: usize,
@@ -35,6 +45,8 @@ impl Default for Settings {
     fn default() -> Self {
         Settings {
             policy: InputPolicy::Native,
+            pad_order: None,
+            small_stage: None,
             norm: Normalisation::IMAGENET,
             map_kind: "norm".into(),
             channel: 0,
@@ -88,13 +100,26 @@ impl Settings {
 
     /// Whether going from `self` to `next` needs a new forward pass.
     pub fn needs_new_run(&self, next: &Settings) -> bool {
-        self.policy != next.policy || self.norm != next.norm
+        self.policy != next.policy
+            || self.norm != next.norm
+            || self.pad_order != next.pad_order
+            || self.small_stage != next.small_stage
     }
 
-    /// Remember a path at the front of a short most-recent-first list.
+    /// The padding semantics a run uses with a checkpoint whose layout defaults to `layout`.
+    pub fn semantics(&self, layout: Semantics) -> Semantics {
+        Semantics {
+            pad_order: self.pad_order.unwrap_or(layout.pad_order),
+            small_stage: self.small_stage.unwrap_or(layout.small_stage),
+        }
+    }
+
+    /// Remember a path, made absolute, at the front of a short most-recent-first list
+    /// without repeats.
     pub fn remember(list: &mut Vec<PathBuf>, path: &std::path::Path) {
-        list.retain(|p| p != path);
-        list.insert(0, path.to_path_buf());
+        let abs = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_path_buf());
+        list.retain(|p| p != &abs);
+        list.insert(0, abs);
         list.truncate(10);
     }
 }
@@ -102,6 +127,18 @@ impl Settings {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn recent_paths_are_absolute_and_not_repeated() {
+        let dir = tempfile::tempdir().unwrap();
+        let file = dir.path().join("a.png");
+        std::fs::write(&file, b"x").unwrap();
+        let mut list = Vec::new();
+        Settings::remember(&mut list, &file);
+        Settings::remember(&mut list, &dir.path().join(".").join("a.png"));
+        assert_eq!(list.len(), 1);
+        assert!(list[0].is_absolute());
+    }
 
     #[test]
     fn settings_round_trip_and_tolerate_missing_fields() {
@@ -112,6 +149,15 @@ mod tests {
         let text = serde_json::to_string(&s).unwrap();
         assert_eq!(serde_json::from_str::<Settings>(&text).unwrap(), s);
         let partial: Settings = serde_json::from_str("{\"opacity\": 0.9}").unwrap();
+        // A slow input size is not carried to the next start.
+        let slow = Settings {
+            policy: InputPolicy::Square(4096),
+            pad_order: Some(PadOrder::PadThenShift),
+            ..Default::default()
+        };
+        let back: Settings = serde_json::from_str(&serde_json::to_string(&slow).unwrap()).unwrap();
+        assert_eq!(back.policy, InputPolicy::Native);
+        assert_eq!(back.pad_order, None);
         assert_eq!(partial.opacity, 0.9);
         assert_eq!(partial.map_kind, "norm");
     }

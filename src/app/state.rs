@@ -94,6 +94,8 @@ pub struct Workbench {
     pub last_export: Option<Exported>,
     /// Use random weights if the checkpoint being loaded fails and none is loaded (at start).
     pub random_if_weights_fail: bool,
+    /// Bumped when the path field should take the keyboard (no file dialog could be shown).
+    pub path_focus_requests: u64,
     pending: Option<Pending>,
     exporting: Option<Receiver<Result<Exported>>>,
     cache: HashMap<String, (Arc<image::RgbImage>, Arc<StageOutputs>)>,
@@ -120,6 +122,7 @@ impl Workbench {
             loader: Loader::default(),
             last_export: None,
             random_if_weights_fail: false,
+            path_focus_requests: 0,
             pending: None,
             exporting: None,
             cache: HashMap::new(),
@@ -320,10 +323,13 @@ impl Workbench {
                 }
             },
             Loaded::Picked(paths) => self.open_paths(&paths),
-            Loaded::PickedNothing { at_once: true } => self.error(
-                "no file dialog could be shown on this desktop; type a path in the Path field \
-                 (or drop files on the window)",
-            ),
+            Loaded::PickedNothing { at_once: true } => {
+                self.path_focus_requests += 1;
+                self.error(
+                    "no file dialog could be shown on this desktop; type a path in the Path \
+                     field (the cursor is there) or drop files on the window",
+                )
+            }
             Loaded::PickedNothing { at_once: false } => {}
         }
     }
@@ -344,11 +350,12 @@ impl Workbench {
             .as_ref()
             .map_or_else(|| w.name.clone(), |p| p.display().to_string());
         Some(format!(
-            "{}|{}|{:?}|{:?}",
+            "{}|{}|{:?}|{:?}|{:?}",
             img.path.display(),
             weights_id,
             self.settings.policy,
-            self.settings.norm
+            self.settings.norm,
+            self.settings.semantics(w.model.default_semantics)
         ))
     }
 
@@ -379,8 +386,13 @@ impl Workbench {
         let model = w.model.clone();
         let pixels = img.pixels.clone();
         let (tw, th) = self.settings.policy.target(pixels.width(), pixels.height());
+        let semantics = self.settings.semantics(model.default_semantics);
         let checked = model
-            .check_memory((th as usize, tw as usize), None, DEFAULT_MEMORY_LIMIT)
+            .check_memory(
+                (th as usize, tw as usize),
+                Some(semantics),
+                DEFAULT_MEMORY_LIMIT,
+            )
             .and_then(|_| self.settings.norm.validate());
         if let Err(e) = checked {
             let msg = format!("{}: {e}", img.path.display());
@@ -397,7 +409,10 @@ impl Workbench {
             pixels,
             self.settings.policy,
             self.settings.norm,
-            ForwardOptions::default(),
+            ForwardOptions {
+                semantics: Some(semantics),
+                ..ForwardOptions::default()
+            },
             wake,
         );
         self.pending = Some(Pending {
@@ -604,6 +619,7 @@ impl Workbench {
                 .as_ref()
                 .map_or_else(String::new, |w| w.name.clone()),
             paths,
+            rows: self.regions.stats.clone(),
         };
         let (tx, rx) = channel();
         let wake = self.wake();
@@ -618,6 +634,25 @@ impl Workbench {
         match spawned {
             Ok(_) => self.exporting = Some(rx),
             Err(e) => self.error(format!("cannot start saving: {e}")),
+        }
+    }
+
+    /// Write the region table on screen as CSV (the report's `regions.csv` columns) next to
+    /// where the figure goes.
+    pub fn save_table(&mut self) {
+        let Some(paths) = self.export_paths() else {
+            self.error("no image open");
+            return;
+        };
+        if self.regions.stats.is_empty() {
+            self.error("no region statistics to save (draw a region; a scalar map is needed)");
+            return;
+        }
+        let written = crate::analysis::rows_csv(&self.regions.stats)
+            .and_then(|text| crate::io::write_text_atomic(&paths.regions_csv, &text));
+        match written {
+            Ok(()) => self.info(format!("saved {}", paths.regions_csv.display())),
+            Err(e) => self.error(format!("table not saved: {e}")),
         }
     }
 
@@ -667,6 +702,7 @@ impl Workbench {
             Action::Rerun => self.request(),
             Action::CancelRun => self.cancel_pending(),
             Action::SaveFigure => self.save_figure(),
+            Action::SaveTable => self.save_table(),
             Action::ToggleHelp => self.show_help ^= true,
             Action::ShowLoadReport(on) => self.show_report = on,
             Action::ClearMessages => self.messages.clear(),

@@ -98,7 +98,7 @@ impl Window {
         actions.extend(p.controls.ui(ui, b));
         egui::Panel::right("regions")
             .resizable(true)
-            .default_size(330.0)
+            .default_size(360.0)
             .show(ui, |ui| {
                 egui::ScrollArea::vertical().show(ui, |ui| {
                     actions.extend(p.regions.ui(ui, b, &mut p.canvas));

@@ -1,5 +1,5 @@
-//! `mullion bench`: time forward passes of a published model size with random weights. The last
-//! line is the contract `median_ms=<float> peak_rss_mb=<float>`.
+//! `mullion bench`: time forward passes of a published model size with random weights, or of
+//! the user's own checkpoint. The last line is the contract `median_ms=<float> peak_rss_mb=<float>`.
 
 use super::options::{parse_size, PresetArg};
 use crate::engine::input::DEFAULT_MEMORY_LIMIT;
@@ -16,6 +16,9 @@ pub struct BenchArgs {
     /// Square input side in pixels (or HxW).
     #[arg(long, default_value = "224", value_parser = parse_size, value_name = "N|HxW")]
     pub size: (usize, usize),
+    /// Time this checkpoint instead of a preset with random weights.
+    #[arg(long, value_name = "FILE", conflicts_with = "preset")]
+    pub weights: Option<std::path::PathBuf>,
     /// Timed runs after one warm-up (1 to 10000).
     #[arg(long, default_value_t = 10, value_parser = clap::value_parser!(u16).range(1..=10000))]
     pub runs: u16,
@@ -46,9 +49,18 @@ fn median(times: &mut [f64]) -> f64 {
 }
 
 pub fn run(args: &BenchArgs) -> Result<()> {
-    let config = args.preset.config();
     let (h, w) = args.size;
-    let model = Backbone::random(config.clone(), 0)?;
+    let (model, what) = match &args.weights {
+        Some(path) => (
+            crate::engine::open_checkpoint(path, None)?.model,
+            format!("checkpoint {}", crate::io::file_name(path)),
+        ),
+        None => (
+            Backbone::random(args.preset.config(), 0)?,
+            format!("preset {}, random weights", args.preset.name()),
+        ),
+    };
+    let config = model.config.clone();
     let semantics = model.default_semantics;
     model.check_memory((h, w), None, DEFAULT_MEMORY_LIMIT)?;
     let x = Tensor::randn(0f32, 1f32, (3, h, w), &candle_core::Device::Cpu)?;
@@ -64,8 +76,7 @@ pub fn run(args: &BenchArgs) -> Result<()> {
     let median = median(&mut times);
     let gmac = config.multiply_adds((h, w), semantics, None) as f64 / 1e9;
     println!(
-        "preset {} at {h}x{w}, random weights, {} runs: min {:.1} ms, max {:.1} ms, {:.1} GMAC ({:.1} GMAC/s)",
-        args.preset.name(),
+        "{what} at {h}x{w}, {} runs: min {:.1} ms, max {:.1} ms, {:.1} GMAC ({:.1} GMAC/s)",
         args.runs,
         times[0],
         times[times.len() - 1],

@@ -66,6 +66,7 @@ pub struct FigureOutcome {
 /// written, so a failure leaves none of them behind.
 pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
     let kind = opts.map.as_ref();
+    crate::io::check_png_path(&opts.out)?;
     opts.spec.validate()?;
     let is_pca = kind.id() == "pca";
     if is_pca && (opts.stats.is_some() || opts.csv.is_some()) {

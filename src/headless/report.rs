@@ -393,7 +393,7 @@ impl Context<'_> {
         let figure_path = self
             .figures_dir
             .as_ref()
-            .map(|d| d.join(format!("{name}.figure.png")));
+            .map(|d| d.join(crate::io::figure_file_name(image, &self.args.map.id())));
         // A sidecar that is there but unreadable is handled (and moved aside) by the loader;
         // one that is not a regular file (a FIFO would block the read) fails here, untouched.
         let bytes = annotation::read_bytes(&sidecar_path)?;

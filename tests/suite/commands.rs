@@ -67,3 +67,31 @@ fn features_and_figure_on_the_demo() {
     assert!(image::open(&png).unwrap().width() > 4 * 97);
     assert!(std::fs::read_to_string(&json).unwrap().contains("p99"));
 }
+
+#[test]
+fn bench_times_the_users_own_checkpoint() {
+    let w = crate::common::fixtures().join("timm_odd/weights.safetensors");
+    let (ok, stdout, stderr) = mullion(&[
+        "bench",
+        "--weights",
+        w.to_str().unwrap(),
+        "--size",
+        "97x160",
+        "--runs",
+        "1",
+    ]);
+    assert!(ok, "{stderr}");
+    assert!(
+        stdout.contains("checkpoint weights.safetensors at 97x160"),
+        "{stdout}"
+    );
+    let last = stdout.lines().last().unwrap();
+    assert!(
+        last.starts_with("median_ms=") && last.contains(" peak_rss_mb="),
+        "{last}"
+    );
+    // A checkpoint that is not there is a runtime failure naming it.
+    let r = crate::common::mullion(&["bench", "--weights", "missing.safetensors"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("missing.safetensors"), "{}", r.stderr);
+}

@@ -791,15 +791,15 @@ fn report_with_a_regions_folder_and_figures() {
     let o = report::run_report(&args).unwrap();
     assert_eq!(o.computed, IMAGES);
     for name in IMAGES {
-        let fig = image::open(s.out.join("figures").join(format!("{name}.figure.png"))).unwrap();
+        let figure = mullion::io::figure_file_name(std::path::Path::new(name), "norm");
+        let fig = image::open(s.out.join("figures").join(figure)).unwrap();
         assert!(fig.width() > 300 && fig.height() > 200);
     }
     // Figures count as part of being done: a missing one is made again.
-    std::fs::remove_file(
-        s.out
-            .join("figures")
-            .join(format!("{}.figure.png", IMAGES[2])),
-    )
+    std::fs::remove_file(s.out.join("figures").join(mullion::io::figure_file_name(
+        std::path::Path::new(IMAGES[2]),
+        "norm",
+    )))
     .unwrap();
     let again = report::run_report(&args).unwrap();
     assert_eq!(again.computed, [IMAGES[2]]);

@@ -485,3 +485,129 @@ fn cancel_clears_and_run_restarts() {
     );
     assert!(b.pictures.textures.is_some());
 }
+
+/// As a practitioner goes on: the padding rules are chosen in the window with the layout's
+/// default marked; a one-token region's AUROC is marked and sorts last; the table is saved as
+/// CSV with the report's columns; a folder reopened after saving lists no saved figure; with no
+/// file-dialog service the window says so and the path field takes the cursor.
+#[test]
+fn padding_rules_few_token_rows_table_export_and_own_outputs() {
+    let dir = tempfile::tempdir().unwrap();
+    std::fs::copy(
+        fixtures().join("timm_odd/input.png"),
+        dir.path().join("a.png"),
+    )
+    .unwrap();
+    let mut h = new_window();
+    h.state_mut()
+        .bench
+        .open_paths(&[fixtures().join("timm_odd/weights.safetensors")]);
+    wait(&mut h);
+    h.state_mut().bench.open_paths(&[dir.path().to_path_buf()]);
+    wait(&mut h);
+    let layout = h
+        .state()
+        .bench
+        .weights
+        .as_ref()
+        .unwrap()
+        .model
+        .default_semantics;
+    assert_eq!(
+        layout.pad_order.name(),
+        "shift-then-pad",
+        "timm's own order"
+    );
+    // The combo marks the layout's default and switches the run.
+    h.get_by_label("pad order").click();
+    h.run_steps(2);
+    assert!(
+        h.query_all_by_label("shift-then-pad (layout default)")
+            .count()
+            >= 1,
+        "the layout's default is marked"
+    );
+    h.get_by_label("pad-then-shift").click();
+    h.run_steps(2);
+    wait(&mut h);
+    let sem = h
+        .state()
+        .bench
+        .shown
+        .as_ref()
+        .unwrap()
+        .outputs
+        .geometry
+        .semantics;
+    assert_eq!(sem.pad_order.name(), "pad-then-shift");
+
+    // A one-pixel box and a large one.
+    for shape in [
+        Shape::Box {
+            x0: 40.0,
+            y0: 40.0,
+            x1: 41.0,
+            y1: 41.0,
+        },
+        Shape::Box {
+            x0: 0.0,
+            y0: 0.0,
+            x1: 100.0,
+            y1: 80.0,
+        },
+    ] {
+        apply(&mut h, Action::Region(RegionEdit::Add(shape)));
+    }
+    h.run_steps(2);
+    let stats = h.state().bench.regions.stats.clone();
+    let small: Vec<_> = stats.iter().filter(|s| s.region == 1).collect();
+    assert!(small.iter().all(|s| s.tokens <= 1 && s.outside_tokens > 5));
+    assert!(
+        h.query_all_by_label_contains(" few").count() >= 1,
+        "marked on screen"
+    );
+    h.state_mut().panels.table.sort = (mullion::app::panels::region_table::Column::Auroc, true);
+    h.run_steps(2);
+    // The large region's rows come first, the one-token region's last.
+    let top = |h: &Harness<'_, Window>, label: &str| {
+        h.query_all_by_label(label)
+            .map(|n| n.rect().top())
+            .fold(f32::INFINITY, f32::min)
+    };
+    assert!(
+        top(&h, "region #2") < top(&h, "region #1"),
+        "few-token rows sort last"
+    );
+
+    h.get_by_label("Save table as CSV").click();
+    h.run_steps(2);
+    let table = dir.path().join("a.norm.regions.csv");
+    let mut r = csv::Reader::from_path(&table).unwrap();
+    let header: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
+    assert_eq!(header, mullion::analysis::region_stats::CSV_COLUMNS);
+    assert_eq!(r.records().count(), stats.len());
+
+    // Save a figure, reopen the folder: the figure is not listed as an input.
+    h.get_by_label("Save figure").click();
+    h.run_steps(2);
+    wait(&mut h);
+    assert!(dir.path().join("a.norm.figure.png").exists());
+    h.state_mut().bench.open_paths(&[dir.path().to_path_buf()]);
+    wait(&mut h);
+    assert_eq!(
+        h.state().bench.images.len(),
+        1,
+        "{:?}",
+        h.state().bench.images
+    );
+
+    // No file-dialog service here: said, and the path field is asked to take the cursor.
+    h.get_by_label("Open images…").click();
+    let start = std::time::Instant::now();
+    while h.state().bench.path_focus_requests == 0 && start.elapsed() < Duration::from_secs(20) {
+        h.run_steps(1);
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    assert_eq!(h.state().bench.path_focus_requests, 1);
+    assert!(messages(&h).iter().any(|m| m.contains("no file dialog")));
+}

@@ -6,6 +6,7 @@
 use crate::app::actions::Action;
 use crate::app::settings::Settings;
 use crate::app::state::Workbench;
+use crate::engine::geometry::{PadOrder, SmallStage};
 use crate::engine::input::{InputPolicy, Normalisation};
 
 #[derive(Default)]
@@ -99,6 +100,8 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
             ));
         }
     }
+
+    padding_rules(bench, s, ui);
 
     ui.separator();
     ui.heading("Map");
@@ -233,4 +236,55 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
 fn labelled_drag(ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>) -> egui::Response {
     let label = ui.label(name);
     ui.add(value).labelled_by(label.id)
+}
+
+/// The padding order and the small-stage rule, the checkpoint layout's default marked.
+fn padding_rules(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
+    let Some(w) = &bench.weights else { return };
+    let layout = w.model.default_semantics;
+    ui.label("Padding rules");
+    let mark = |name: &str, default: &str| {
+        if name == default {
+            format!("{name} (layout default)")
+        } else {
+            name.to_string()
+        }
+    };
+    let current = s.semantics(layout);
+    let l = ui.label("pad order");
+    egui::ComboBox::from_id_salt("pad order")
+        .width(ui.available_width().min(220.0))
+        .selected_text(mark(current.pad_order.name(), layout.pad_order.name()))
+        .show_ui(ui, |ui| {
+            for p in [PadOrder::PadThenShift, PadOrder::ShiftThenPad] {
+                let choice = (p != layout.pad_order).then_some(p);
+                ui.selectable_value(
+                    &mut s.pad_order,
+                    choice,
+                    mark(p.name(), layout.pad_order.name()),
+                );
+            }
+        })
+        .response
+        .labelled_by(l.id);
+    let l = ui.label("small stages");
+    egui::ComboBox::from_id_salt("small stages")
+        .width(ui.available_width().min(220.0))
+        .selected_text(mark(current.small_stage.name(), layout.small_stage.name()))
+        .show_ui(ui, |ui| {
+            for k in [
+                SmallStage::Clamp,
+                SmallStage::PadUp,
+                SmallStage::ClampPerAxis,
+            ] {
+                let choice = (k != layout.small_stage).then_some(k);
+                ui.selectable_value(
+                    &mut s.small_stage,
+                    choice,
+                    mark(k.name(), layout.small_stage.name()),
+                );
+            }
+        })
+        .response
+        .labelled_by(l.id);
 }

@@ -31,6 +31,16 @@ impl Default for Lens {
 }
 
 impl Lens {
+    /// Zoom by `factor` keeping the point at `offset` from the lens centre where it is.
+    pub fn zoom_at(&mut self, offset: Vec2, factor: f32) {
+        let zoom = (self.zoom * factor).clamp(0.2, 40.0);
+        let f = zoom / self.zoom;
+        // The picture's centre is at `pan`; the point under the pointer is `offset - pan`
+        // from it, and that distance scales with the zoom.
+        self.pan = offset - (offset - self.pan) * f;
+        self.zoom = zoom;
+    }
+
     /// Back to the whole stage in view.
     pub fn fit(&mut self) {
         self.zoom = 1.0;
@@ -68,10 +78,10 @@ impl Lens {
         let resp = ui.allocate_rect(area, Sense::click_and_drag());
         let (h, w) = render::canvas_size(sg);
         let canvas_px = (w as f32, h as f32);
-        if resp.hovered() {
+        if let (true, Some(at)) = (resp.hovered(), resp.hover_pos()) {
             let scroll = ui.input(|i| i.smooth_scroll_delta.y);
             if scroll != 0.0 {
-                self.zoom = (self.zoom * (1.0 + scroll * 0.002)).clamp(0.2, 40.0);
+                self.zoom_at(at - area.center(), 1.0 + scroll * 0.002);
             }
         }
         let fit = (area.width() / canvas_px.0).min(area.height() / canvas_px.1);
@@ -130,5 +140,24 @@ impl Lens {
             }
         }
         out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn zooming_keeps_the_point_under_the_pointer() {
+        let mut lens = Lens::default();
+        lens.pan = Vec2::new(30.0, -10.0);
+        let offset = Vec2::new(100.0, 40.0);
+        // The picture point under the pointer, in picture units (distance from its centre
+        // divided by the zoom), is the same before and after.
+        let before = (offset - lens.pan) / lens.zoom;
+        lens.zoom_at(offset, 1.7);
+        let after = (offset - lens.pan) / lens.zoom;
+        assert!((before - after).length() < 1e-4, "{before:?} vs {after:?}");
+        assert!((lens.zoom - 1.7).abs() < 1e-6);
     }
 }

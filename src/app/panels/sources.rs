@@ -11,6 +11,8 @@ use std::path::PathBuf;
 pub struct SourceBar {
     /// The path field.
     pub typed_path: String,
+    /// The last focus request of the state this bar has honoured.
+    focus_seen: u64,
 }
 
 impl SourceBar {
@@ -110,6 +112,10 @@ impl SourceBar {
                     .desired_width(260.0),
             )
             .labelled_by(label.id);
+        if bench.path_focus_requests != self.focus_seen {
+            self.focus_seen = bench.path_focus_requests;
+            field.request_focus();
+        }
         let enter = field.lost_focus() && ui.input(|i| i.key_pressed(egui::Key::Enter));
         if ui.button("Open path").clicked() || enter {
             out.push(Action::OpenTyped(self.typed_path.clone()));

@@ -142,7 +142,8 @@ impl StageStrip {
         grid_key(ui, &overlays, bench);
         let n = tex.strip.len() + 1;
         let avail = ui.available_width();
-        let per_row = ((avail / 190.0).floor() as usize).clamp(1, n);
+        // All pictures in one row while each keeps 110 points; otherwise as many as fit.
+        let per_row = ((avail / 110.0).floor() as usize).clamp(1, n);
         let cell_w = (avail / per_row as f32 - 8.0).max(80.0);
         let canvases: Vec<(f32, f32)> = std::iter::once((g.image.1 as f32, g.image.0 as f32))
             .chain(g.stages.iter().map(|s| {
@@ -161,6 +162,8 @@ impl StageStrip {
                 let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
                 let size = Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale);
                 ui.vertical(|ui| {
+                    // Captions wrap inside the cell; the row never grows past the strip.
+                    ui.set_max_width(cell_w);
                     let mut dense = false;
                     let title = if idx == 0 {
                         "image".to_string()
