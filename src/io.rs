@@ -399,12 +399,25 @@ pub fn write_atomic(path: &Path, write: impl FnOnce(&Path) -> Result<()>) -> Res
                 format!("cannot write in the folder {}: {e}", dir.display()),
             )
         })?;
-    let result =
-        write(&tmp).and_then(|()| std::fs::rename(&tmp, path).map_err(|e| Error::io(path, e)));
+    let result = write(&tmp)
+        .and_then(|()| usual_mode(&tmp))
+        .and_then(|()| std::fs::rename(&tmp, path).map_err(|e| Error::io(path, e)));
     if result.is_err() {
         let _ = std::fs::remove_file(&tmp);
     }
     result
+}
+
+/// Give a finished output the usual mode for a file others may read (0644 on Unix), whatever
+/// the library that wrote it chose (some write their files private).
+fn usual_mode(tmp: &Path) -> Result<()> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(tmp, std::fs::Permissions::from_mode(0o644))
+            .map_err(|e| Error::io(tmp, e))?;
+    }
+    Ok(())
 }
 
 /// Write `text` to `path` atomically.
@@ -438,6 +451,23 @@ pub fn save_tensors(tensors: &HashMap<String, Tensor>, out: &Path) -> Result<()>
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[cfg(unix)]
+    #[test]
+    fn outputs_get_the_usual_mode() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("t.bin");
+        write_atomic(&p, |tmp| {
+            std::fs::write(tmp, b"x").map_err(|e| Error::io(tmp, e))?;
+            // A writer that makes its file private, as some libraries do.
+            std::fs::set_permissions(tmp, std::fs::Permissions::from_mode(0o600))
+                .map_err(|e| Error::io(tmp, e))
+        })
+        .unwrap();
+        let mode = std::fs::metadata(&p).unwrap().permissions().mode() & 0o777;
+        assert_eq!(mode, 0o644);
+    }
 
     #[test]
     fn figures_have_one_name_and_are_not_inputs() {
