@@ -95,3 +95,27 @@ fn bench_times_the_users_own_checkpoint() {
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("missing.safetensors"), "{}", r.stderr);
 }
+
+#[test]
+fn figures_are_png_only() {
+    let dir = tempfile::tempdir().unwrap();
+    let w = crate::common::fixtures().join("timm_odd/weights.safetensors");
+    let i = crate::common::fixtures().join("timm_odd/input.png");
+    let out = dir.path().join("fig.jpg");
+    let r = crate::common::mullion(&[
+        "figure",
+        "--weights",
+        w.to_str().unwrap(),
+        "--image",
+        i.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("fig.jpg") && r.stderr.contains("PNG"),
+        "{}",
+        r.stderr
+    );
+    assert!(!out.exists());
+}

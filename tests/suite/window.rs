@@ -376,9 +376,19 @@ fn notes_are_saved_and_the_figure_caption_carries_them() {
     let on_disk = mullion::annotation::load(&sidecar).unwrap().unwrap();
     assert_eq!(on_disk.regions[0].note, "curled edge", "saved while typing");
 
-    // Away and back: the note is still there.
+    // Away and back: the note is still there. While the next image loads, nothing of this
+    // one (maps or regions) stays on screen.
     h.get_by_label("Next >").click();
-    h.run_steps(2);
+    h.run_steps(1);
+    {
+        let b = &h.state().bench;
+        assert!(b.pictures.maps.is_none() && b.shown.is_none());
+        assert!(b
+            .regions
+            .sidecar
+            .as_ref()
+            .is_none_or(|sc| sc.image == "b.png"));
+    }
     wait(&mut h);
     h.get_by_label("< Previous").click();
     h.run_steps(2);
@@ -610,4 +620,42 @@ fn padding_rules_few_token_rows_table_export_and_own_outputs() {
     }
     assert_eq!(h.state().bench.path_focus_requests, 1);
     assert!(messages(&h).iter().any(|m| m.contains("no file dialog")));
+}
+
+/// The log is capped, text is never under 11 points, and region outlines can be hidden.
+#[test]
+fn log_cap_text_size_and_hidden_outlines() {
+    let mut h = new_window();
+    for i in 0..(mullion::app::state::MESSAGE_CAP + 50) {
+        h.state_mut().bench.error(format!("message {i}"));
+    }
+    h.run_steps(1);
+    let b = &h.state().bench;
+    assert_eq!(b.messages.len(), mullion::app::state::MESSAGE_CAP);
+    assert!(b
+        .messages
+        .last()
+        .unwrap()
+        .text
+        .ends_with(&format!("{}", mullion::app::state::MESSAGE_CAP + 49)));
+    let smallest = h
+        .ctx
+        .global_style()
+        .text_styles
+        .values()
+        .map(|f| f.size)
+        .fold(f32::INFINITY, f32::min);
+    assert!(smallest >= mullion::app::window::MIN_TEXT, "{smallest}");
+
+    h.state_mut().bench.use_random_weights();
+    h.state_mut()
+        .bench
+        .open_paths(&[fixtures().join("tf4_odd/input.png")]);
+    wait(&mut h);
+    assert!(h.state().bench.settings.show_regions);
+    h.get_by_label("Show region outlines").click();
+    h.run_steps(2);
+    assert!(!h.state().bench.settings.show_regions);
+    assert!(!h.state().bench.regions.outlines);
+    assert_eq!(h.query_all_by_label("region outlines hidden").count(), 1);
 }
