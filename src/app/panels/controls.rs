@@ -242,47 +242,54 @@ fn labelled_drag(ui: &mut egui::Ui, name: &str, value: egui::DragValue<'_>) -> e
 fn padding_rules(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
     let Some(w) = &bench.weights else { return };
     let layout = w.model.default_semantics;
+    let current = s.semantics(layout);
     ui.label("Padding rules");
-    let mark = |name: &str, default: &str| {
-        if name == default {
-            format!("{name} (layout default)")
+    rule_combo(
+        ui,
+        "pad order",
+        &mut s.pad_order,
+        (current.pad_order, layout.pad_order),
+        &[PadOrder::PadThenShift, PadOrder::ShiftThenPad],
+        PadOrder::name,
+    );
+    rule_combo(
+        ui,
+        "small stages",
+        &mut s.small_stage,
+        (current.small_stage, layout.small_stage),
+        &[
+            SmallStage::Clamp,
+            SmallStage::PadUp,
+            SmallStage::ClampPerAxis,
+        ],
+        SmallStage::name,
+    );
+}
+
+/// A choice among `options` stored as `None` for the layout's default, labelled `name` for
+/// assistive tools; `(current, default)` are the rule in use and the layout's own.
+fn rule_combo<T: Copy + PartialEq>(
+    ui: &mut egui::Ui,
+    name: &str,
+    value: &mut Option<T>,
+    (current, default): (T, T),
+    options: &[T],
+    text: fn(T) -> &'static str,
+) {
+    let mark = |v: T| {
+        if v == default {
+            format!("{} (layout default)", text(v))
         } else {
-            name.to_string()
+            text(v).to_string()
         }
     };
-    let current = s.semantics(layout);
-    let l = ui.label("pad order");
-    egui::ComboBox::from_id_salt("pad order")
+    let l = ui.label(name);
+    egui::ComboBox::from_id_salt(name)
         .width(ui.available_width().min(220.0))
-        .selected_text(mark(current.pad_order.name(), layout.pad_order.name()))
+        .selected_text(mark(current))
         .show_ui(ui, |ui| {
-            for p in [PadOrder::PadThenShift, PadOrder::ShiftThenPad] {
-                let choice = (p != layout.pad_order).then_some(p);
-                ui.selectable_value(
-                    &mut s.pad_order,
-                    choice,
-                    mark(p.name(), layout.pad_order.name()),
-                );
-            }
-        })
-        .response
-        .labelled_by(l.id);
-    let l = ui.label("small stages");
-    egui::ComboBox::from_id_salt("small stages")
-        .width(ui.available_width().min(220.0))
-        .selected_text(mark(current.small_stage.name(), layout.small_stage.name()))
-        .show_ui(ui, |ui| {
-            for k in [
-                SmallStage::Clamp,
-                SmallStage::PadUp,
-                SmallStage::ClampPerAxis,
-            ] {
-                let choice = (k != layout.small_stage).then_some(k);
-                ui.selectable_value(
-                    &mut s.small_stage,
-                    choice,
-                    mark(k.name(), layout.small_stage.name()),
-                );
+            for &v in options {
+                ui.selectable_value(value, (v != default).then_some(v), mark(v));
             }
         })
         .response
