@@ -5,7 +5,8 @@
 //! layered and imports run one way, from the bottom up (`tests/suite/architecture.rs` checks it):
 //!
 //! ```text
-//! error, io, numeric     the foundation: errors, atomic files, image listing, AUROC
+//! error, io, numeric,    the foundation: errors, atomic files, image listing, AUROC, the
+//! caution                caution text
 //! engine                 geometry, config, checkpoint, layers, model, input, session, worker
 //! annotation             shapes and clipping, the sidecar file, undo history, palette
 //! analysis               map kinds, PCA, scaling, colour maps, statistics, map preparation,
@@ -21,6 +22,7 @@
 pub mod analysis;
 pub mod annotation;
 pub mod app;
+pub mod caution;
 pub mod commands;
 pub mod demo;
 pub mod engine;

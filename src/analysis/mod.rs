@@ -6,7 +6,6 @@
 //! drop in beside the ones here without touching the renderer: it only sees a [`Map`].
 //! Depends on the foundation, the engine and annotation.
 
-pub mod caution;
 pub mod colormap;
 mod colormap_data;
 pub mod kinds;
@@ -17,7 +16,8 @@ pub mod region_stats;
 pub mod scale;
 pub mod stats;
 
-pub use caution::CAUTION;
+/// The caution lives in the foundation so every room (the demo's model card too) shares it.
+pub use crate::caution::CAUTION;
 pub use colormap::Colormap;
 pub use kinds::{
     parse_map_kind, rank_channels, rank_token_channels, token_norm, Channel, TokenNorm,

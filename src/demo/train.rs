@@ -589,8 +589,8 @@ pub fn model_card(
          The AUROC is the probability that a token on a plant (healthy, wilted or weed) has a larger \
          last-stage L2 norm than a token elsewhere (soil, empty cell, tray; Mann-Whitney, ties one half).\n\n\
          ## Caution\n\n\
-         Response maps show where features are large, not why the model decides; they are no \
-         evidence of safety for high-stakes use, where local rules and qualified review come first.\n",
+         {caution}\n",
+        caution = crate::caution::CAUTION,
         early = spec.early_step.unwrap_or(0),
         p = spec.config.patch,
         c = spec.config.embed_dim,

@@ -10,10 +10,11 @@ use std::collections::{BTreeMap, BTreeSet};
 use std::path::Path;
 
 /// The rooms, bottom first; a file may import from its own room or from a room ranked lower.
-const LAYERS: [(&str, u32); 11] = [
+const LAYERS: [(&str, u32); 12] = [
     ("error", 0),
     ("io", 1),
     ("numeric", 1),
+    ("caution", 1),
     ("engine", 2),
     ("annotation", 3),
     ("analysis", 4),
@@ -25,7 +26,7 @@ const LAYERS: [(&str, u32); 11] = [
 ];
 
 /// What the demo may use besides itself.
-const DEMO_MAY_USE: [&str; 5] = ["error", "io", "numeric", "engine", "annotation"];
+const DEMO_MAY_USE: [&str; 6] = ["error", "io", "numeric", "caution", "engine", "annotation"];
 
 /// One source file: its module path and its text without comments.
 struct SourceFile {

@@ -1,4 +1,5 @@
-//! The caution every exported figure, report and help text carries.
+//! The caution every exported figure, report, model card and help text carries: one sentence,
+//! one home.
 
 /// Response maps can mislead; this sentence goes wherever they leave the program.
 pub const CAUTION: &str = "Response maps show where features are large, not why the model \
