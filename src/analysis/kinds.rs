@@ -112,7 +112,7 @@ pub fn parse_map_kind(s: &str) -> Result<Box<dyn MapKind>> {
                     Error::BadArgument(format!("map '{s}': the channel must be a whole number"))
                 }),
             None => Err(Error::BadArgument(format!(
-                "map '{s}': expected norm, channel:N, pca or difference (two checkpoints)"
+                "map '{s}': expected norm, channel:N or pca (or difference, which compares two checkpoints)"
             ))),
         },
     }
