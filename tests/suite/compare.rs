@@ -681,3 +681,177 @@ fn the_difference_map_works_with_the_shared_map_machinery() {
         .filter_map(|r| r.inside_mean)
         .all(|v| (0.0..=2.0).contains(&v)));
 }
+
+#[test]
+fn a_rerun_with_more_images_adds_them_to_the_saved_sums() {
+    let dir = tempfile::tempdir().unwrap();
+    let (a, b) = (sample("demo-early.safetensors"), sample("demo.safetensors"));
+    let grow = dir.path().join("grow");
+    std::fs::create_dir(&grow).unwrap();
+    for n in ["tray-03-97x160.png", "tray-05-224x224.png"] {
+        std::fs::copy(sample(n), grow.join(n)).unwrap();
+    }
+    let run = |images: &Path, out: &Path| {
+        let r = mullion(&[
+            "compare",
+            "--base",
+            a.to_str().unwrap(),
+            "--tuned",
+            b.to_str().unwrap(),
+            "--images",
+            images.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ]);
+        assert!(r.ok(), "{}", r.stderr);
+        r.stderr
+    };
+    let out = dir.path().join("out");
+    run(&grow, &out);
+    std::fs::copy(
+        sample("tray-01-333x250.png"),
+        grow.join("tray-01-333x250.png"),
+    )
+    .unwrap();
+    let said = run(&grow, &out);
+    assert!(said.contains("1 computed, 2 reused"), "{said}");
+    // The same table as a fresh run over the three images, pooled rows included.
+    let fresh = dir.path().join("fresh");
+    run(&grow, &fresh);
+    let table = |d: &Path| std::fs::read_to_string(d.join("stages.csv")).unwrap();
+    assert_eq!(table(&out), table(&fresh));
+    // An image replaced by another: its old tokens are in the sums, so everything is redone.
+    std::fs::copy(
+        sample("tray-06-224x224.png"),
+        grow.join("tray-05-224x224.png"),
+    )
+    .unwrap();
+    let said = run(&grow, &out);
+    assert!(said.contains("3 computed, 0 reused"), "{said}");
+    let fresh2 = dir.path().join("fresh2");
+    run(&grow, &fresh2);
+    assert_eq!(table(&out), table(&fresh2));
+}
+
+#[test]
+fn other_widths_give_cka_without_cosine_and_other_depths_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let write = |name: &str, cfg: &Config| {
+        let path = dir.path().join(name);
+        save(
+            random_timm_state_dict(cfg, 5)
+                .unwrap()
+                .into_iter()
+                .collect(),
+            &path,
+        );
+        path
+    };
+    let narrow = write("narrow.safetensors", &small_config());
+    let wide = write(
+        "wide.safetensors",
+        &Config {
+            embed_dim: 24,
+            heads: vec![2, 2, 4, 4],
+            ..small_config()
+        },
+    );
+    let shallow = write(
+        "shallow.safetensors",
+        &Config {
+            depths: vec![2, 2, 2],
+            heads: vec![1, 2, 2],
+            ..small_config()
+        },
+    );
+    let img = sample("tray-03-97x160.png");
+    let out = dir.path().join("out");
+    let r = mullion(&[
+        "compare",
+        "--base",
+        narrow.to_str().unwrap(),
+        "--tuned",
+        wide.to_str().unwrap(),
+        "--images",
+        img.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+        "--figures",
+    ]);
+    assert!(r.ok(), "{}", r.stderr);
+    let rows = read_csv(&out.join("stages.csv"));
+    assert_eq!(rows.len(), 8);
+    for r in &rows {
+        let c = num(r, "linear_cka");
+        assert!((0.0..=1.0 + 1e-12).contains(&c), "{r:?}");
+        assert!(
+            r["mean_cosine"].is_empty() && r["min_cosine"].is_empty(),
+            "{r:?}"
+        );
+    }
+    // Only the bias tables of stages 1 and 3 (the same heads in both) keep their shape; every
+    // other tensor is listed instead.
+    let drift = read_csv(&out.join("drift.csv"));
+    assert_eq!(drift.len(), 4, "{drift:?}");
+    assert!(drift.iter().all(
+        |r| r["tensor"].ends_with("attn.relative_position_bias_table")
+            && (r["stage"] == "1" || r["stage"] == "3")
+    ));
+    let unmatched = std::fs::read_to_string(out.join("unmatched.txt")).unwrap();
+    assert!(
+        unmatched.contains("shapes differ: layers.0.blocks.0.attn.qkv.weight"),
+        "{unmatched}"
+    );
+    assert!(out.join("figures/tray-03-97x160.png.compare.png").is_file());
+    let r = mullion(&[
+        "compare",
+        "--base",
+        narrow.to_str().unwrap(),
+        "--tuned",
+        shallow.to_str().unwrap(),
+        "--images",
+        img.to_str().unwrap(),
+        "--out",
+        dir.path().join("o2").to_str().unwrap(),
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("shallow.safetensors") && r.stderr.contains("3 stages"),
+        "{}",
+        r.stderr
+    );
+}
+
+#[test]
+fn a_broken_image_is_listed_and_the_run_fails_after_writing() {
+    let dir = tempfile::tempdir().unwrap();
+    let imgs = dir.path().join("imgs");
+    std::fs::create_dir(&imgs).unwrap();
+    std::fs::copy(
+        sample("tray-03-97x160.png"),
+        imgs.join("tray-03-97x160.png"),
+    )
+    .unwrap();
+    std::fs::write(imgs.join("broken.png"), b"not a png").unwrap();
+    let out = dir.path().join("out");
+    let (a, b) = (sample("demo-early.safetensors"), sample("demo.safetensors"));
+    let r = mullion(&[
+        "compare",
+        "--base",
+        a.to_str().unwrap(),
+        "--tuned",
+        b.to_str().unwrap(),
+        "--images",
+        imgs.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("broken.png"), "{}", r.stderr);
+    let rows = read_csv(&out.join("stages.csv"));
+    assert_eq!(rows.len(), 8, "the good image and the pooled rows");
+    assert!(rows.iter().all(|r| r["image"] != "broken.png"));
+    let summary: Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
+    assert_eq!(summary["failed"][0]["image"], "broken.png");
+}
