@@ -269,7 +269,7 @@ impl Pool {
                 .map_err(Into::into)
         };
         let n = vec("stages")?.first().copied().unwrap_or(-1.0);
-        if !(0.0..=64.0).contains(&n) || n.fract() != 0.0 {
+        if !(0.0..=crate::engine::config::MAX_STAGES as f64).contains(&n) || n.fract() != 0.0 {
             return Err(bad(format!("tensor stages is {n}, not a stage count")));
         }
         let mut pool = Pool(vec![None; n as usize]);

@@ -1,5 +1,5 @@
 //! Linear CKA (centred kernel alignment with the linear kernel; Kornblith, Norouzi, Lee and
-//! Hinton, 2019, "Similarity of Neural Network Representations Revisited", ICML, Eq. 5's
+//! Hinton, 2019, "Similarity of Neural Network Representations Revisited", ICML, the
 //! linear form): for token matrices X `[n, p]` and Y `[n, q]` of the same n tokens with centred
 //! columns,
 //!
