@@ -10,9 +10,11 @@
 //! engine                 geometry, config, checkpoint, layers, model, input, session, worker
 //! annotation             shapes and clipping, the sidecar file, undo history, palette
 //! analysis               map kinds, PCA, scaling, colour maps, statistics, map preparation,
-//!                        region statistics
+//!                        region statistics, two-checkpoint comparison (CKA, cosine, the
+//!                        difference map, weight drift)
 //! render                 panels, legends, text, composed figures
-//! headless               one image's figure, the report over a folder
+//! headless               one image's figure, the report over a folder, the comparison of
+//!                        two checkpoints, merging split runs
 //! demo                   the seedling-tray generator, its labels, demo training
 //!                        (uses only the foundation, engine and annotation)
 //! app                    the window

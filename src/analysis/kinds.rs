@@ -95,12 +95,14 @@ pub fn rank_token_channels(t: &Tokens) -> Vec<(usize, f32)> {
     ranked
 }
 
-/// A map kind from its command-line name: `norm`, `channel:N` or `pca`.
+/// A map kind from its command-line name: `norm`, `channel:N`, `pca` or `difference` (which
+/// needs a second checkpoint).
 pub fn parse_map_kind(s: &str) -> Result<Box<dyn MapKind>> {
     let s = s.trim();
     match s {
         "norm" => Ok(Box::new(TokenNorm)),
         "pca" => Ok(Box::new(Pca)),
+        "difference" => Ok(Box::new(super::compare::TokenDifference)),
         _ => match s.strip_prefix("channel:") {
             Some(n) => n
                 .trim()
@@ -110,7 +112,7 @@ pub fn parse_map_kind(s: &str) -> Result<Box<dyn MapKind>> {
                     Error::BadArgument(format!("map '{s}': the channel must be a whole number"))
                 }),
             None => Err(Error::BadArgument(format!(
-                "map '{s}': expected norm, channel:N or pca"
+                "map '{s}': expected norm, channel:N or pca (or difference, which compares two checkpoints)"
             ))),
         },
     }
@@ -152,6 +154,8 @@ mod tests {
         assert_eq!(parse_map_kind("norm").unwrap().id(), "norm");
         assert_eq!(parse_map_kind("channel:7").unwrap().id(), "channel:7");
         assert_eq!(parse_map_kind("pca").unwrap().id(), "pca");
+        assert!(parse_map_kind("difference").unwrap().needs_pair());
+        assert!(!parse_map_kind("norm").unwrap().needs_pair());
         assert!(parse_map_kind("channel:x").is_err());
         assert!(parse_map_kind("attention").is_err());
     }

@@ -50,6 +50,22 @@ pub trait MapKind: Send + Sync {
     fn label(&self) -> String;
     /// The map of `stage` of one forward pass.
     fn compute(&self, out: &StageOutputs, stage: usize) -> Result<Map>;
+    /// Whether the kind compares two checkpoints and so needs `b` in [`MapKind::compute_pair`].
+    fn needs_pair(&self) -> bool {
+        false
+    }
+    /// The map of `stage` from the forward pass `a` and, for kinds that compare two
+    /// checkpoints, the pass `b` of the same image through the second one. Kinds of one pass
+    /// ignore `b`.
+    fn compute_pair(
+        &self,
+        a: &StageOutputs,
+        b: Option<&StageOutputs>,
+        stage: usize,
+    ) -> Result<Map> {
+        let _ = b;
+        self.compute(a, stage)
+    }
 }
 
 /// The tokens of one stage as a row-major `[rows * cols, channels]` matrix of f32.

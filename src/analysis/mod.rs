@@ -2,12 +2,15 @@
 //! value (or one colour) per token (norm, channel, PCA), their scaling for display, colour maps,
 //! per-stage statistics, map preparation for every picture and region statistics.
 //!
-//! Every kind implements [`MapKind`], so new kinds (attention, comparison of two checkpoints)
-//! drop in beside the ones here without touching the renderer: it only sees a [`Map`].
+//! Every kind implements [`MapKind`], so new kinds drop in beside the ones here without touching
+//! the renderer: it only sees a [`Map`]. Kinds that compare two checkpoints (the difference map
+//! in `compare/`) get the second forward pass through [`MapKind::compute_pair`]; `compare/` also
+//! holds linear CKA, per-token cosine and weight drift.
 //! Depends on the foundation, the engine and annotation.
 
 pub mod colormap;
 mod colormap_data;
+pub mod compare;
 pub mod kinds;
 pub mod map;
 pub mod pca;
@@ -19,12 +22,13 @@ pub mod stats;
 /// The caution lives in the foundation so every room (the demo's model card too) shares it.
 pub use crate::caution::CAUTION;
 pub use colormap::Colormap;
+pub use compare::TokenDifference;
 pub use kinds::{
     parse_map_kind, rank_channels, rank_token_channels, token_norm, Channel, TokenNorm,
 };
 pub use map::{stage_tokens, Map, MapKind, Tokens};
 pub use pca::{fit_pca, Pca, PcaFit};
-pub use prepare::{prepare_stages, PreparedStage};
+pub use prepare::{prepare_stage_pair, prepare_stages, PreparedStage};
 pub use region_stats::{region_stats, rows_csv, token_weights, RegionStats, INSIDE_WEIGHT};
 pub use scale::{normalise_maps, percentile, ScaleRange, ScaleSpec};
 pub use stats::{

@@ -27,6 +27,25 @@ pub fn prepare_stages(
     kind: &dyn MapKind,
     spec: &ScaleSpec,
 ) -> Result<(Vec<Map>, Vec<PreparedStage>)> {
+    prepare_stage_pair(out, None, kind, spec)
+}
+
+/// [`prepare_stages`] for a kind that may compare two checkpoints: `out` is checkpoint A's
+/// forward pass (its geometry is the one drawn) and `other`, when given, checkpoint B's pass of
+/// the same image. Kinds of one pass ignore `other`; a kind that needs it
+/// ([`MapKind::needs_pair`]) is refused without it.
+pub fn prepare_stage_pair(
+    out: &StageOutputs,
+    other: Option<&StageOutputs>,
+    kind: &dyn MapKind,
+    spec: &ScaleSpec,
+) -> Result<(Vec<Map>, Vec<PreparedStage>)> {
+    if kind.needs_pair() && other.is_none() {
+        return Err(crate::error::Error::BadArgument(format!(
+            "the map '{}' compares two checkpoints; give a second one",
+            kind.id()
+        )));
+    }
     let n = out.stages.len();
     if kind.id() == "pca" {
         let mut raw = Vec::with_capacity(n);
@@ -44,7 +63,7 @@ pub fn prepare_stages(
         return Ok((raw, stages));
     }
     let raw: Vec<Map> = (0..n)
-        .map(|s| kind.compute(out, s))
+        .map(|s| kind.compute_pair(out, other, s))
         .collect::<Result<_>>()?;
     let stages = normalise_maps(&raw, spec)?
         .into_iter()

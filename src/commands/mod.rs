@@ -5,6 +5,7 @@
 //! usage (clap's own errors, and arguments that parse but do not fit).
 
 pub mod bench;
+pub mod compare;
 pub mod features;
 pub mod figure;
 pub mod inspect;
@@ -44,7 +45,9 @@ pub enum Command {
     Figure(figure::FigureArgs),
     /// Tabulate, per labelled region of a folder of images, how each stage responds inside it.
     Report(report::ReportArgs),
-    /// Join the shard folders of a split report (report --shard K/N) into one table.
+    /// Compare two checkpoints on the same images: CKA and cosine per stage, weight drift.
+    Compare(compare::CompareArgs),
+    /// Join the shard folders of a split report or comparison (--shard K/N) into one.
     Merge(merge::MergeArgs),
     /// Open the window on the given images or folders.
     Open(window::OpenArgs),
@@ -65,6 +68,7 @@ pub fn run(cli: &Cli) -> Result<()> {
         Some(Command::Summary(a)) => summary::run(a),
         Some(Command::Figure(a)) => figure::run(a),
         Some(Command::Report(a)) => report::run(a),
+        Some(Command::Compare(a)) => compare::run(a),
         Some(Command::Merge(a)) => merge::run(a),
         Some(Command::Open(a)) => window::open(a),
         Some(Command::SampleData(a)) => sample_data::run(a),

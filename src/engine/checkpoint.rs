@@ -239,6 +239,16 @@ impl Layout {
         out
     }
 
+    /// The file keys this layout stores `part` under: one, or several that are concatenated
+    /// along dimension 0 in this order (transformers' separate q, k and v).
+    pub fn file_names(&self, part: &Part) -> Vec<String> {
+        self.recipe(part)
+            .names()
+            .into_iter()
+            .map(String::from)
+            .collect()
+    }
+
     fn recipe(&self, part: &Part) -> Recipe {
         let p = &self.prefix;
         let one = |s: String| Recipe::One(s);

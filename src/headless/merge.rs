@@ -2,8 +2,10 @@
 //! `regions.csv` and `summary.json` one unsplit run gives: the same rows, byte for byte, in the
 //! same order (images sorted by name, each image's rows as its shard wrote them), and the
 //! summary's per-label statistics recomputed from those rows in that order, so they are the
-//! same numbers too.
+//! same numbers too. [`merge_shards`] tells a report's shards from a comparison's (by the
+//! schema of their `summary.json`) and merges either.
 
+use super::compare_merge::{merge_compares, CompareMergeOutcome};
 use super::report::{
     read_summary, FailedImage, Groups, ReportRow, Summary, CSV_NAME, SUMMARY_NAME,
 };
@@ -77,6 +79,32 @@ fn warning_image<'a>(warning: &str, names: &'a [String]) -> Option<&'a str> {
         })
         .max_by_key(|n| n.len())
         .map(String::as_str)
+}
+
+/// What [`merge_shards`] merged.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Merged {
+    Report(MergeOutcome),
+    Compare(CompareMergeOutcome),
+}
+
+/// Merge the shard folders of a split report or of a split comparison, whichever they are (the
+/// first folder's `summary.json` says).
+pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<Merged> {
+    let Some(first) = dirs.first() else {
+        return Err(Error::BadArgument("merge: give the shard folders".into()));
+    };
+    let path = first.join(SUMMARY_NAME);
+    let bytes = crate::io::read_regular(&path, MAX_PART_BYTES)?
+        .ok_or_else(|| Error::bad_file(&path, "missing: is this a finished shard folder?"))?;
+    let schema = serde_json::from_slice::<serde_json::Value>(&bytes)
+        .ok()
+        .and_then(|v| v.get("schema").and_then(|s| s.as_str()).map(String::from));
+    if schema.as_deref() == Some(super::compare::SUMMARY_SCHEMA) {
+        Ok(Merged::Compare(merge_compares(dirs, out)?))
+    } else {
+        Ok(Merged::Report(merge_reports(dirs, out)?))
+    }
 }
 
 /// Merge the shard folders `dirs` (every shard of one split run, each once) into `out`.

@@ -505,6 +505,12 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
                 .into(),
         ));
     }
+    if args.map.needs_pair() {
+        return Err(Error::BadArgument(format!(
+            "--map {} compares two checkpoints; the report runs one (use mullion compare)",
+            args.map.id()
+        )));
+    }
     if let Some(d) = &args.regions {
         if !d.is_dir() {
             return Err(Error::bad_file(d, "--regions: not a folder"));

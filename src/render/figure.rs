@@ -377,3 +377,60 @@ pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
     }
     Ok(fig)
 }
+
+/// Figures one above the other on the figure background, left-aligned, separated by a thin
+/// rule: a comparison's A, B and difference figures in one file.
+pub fn stack_figures(figures: &[RgbaImage]) -> Result<RgbaImage> {
+    let rule = 3u32;
+    let width = figures.iter().map(|f| f.width()).max().unwrap_or(1).max(1);
+    let height = figures
+        .iter()
+        .map(|f| f.height() + rule)
+        .sum::<u32>()
+        .max(1);
+    check_size(height, width)?;
+    let mut out = RgbaImage::from_pixel(
+        width,
+        height,
+        Rgba([BACKGROUND[0], BACKGROUND[1], BACKGROUND[2], 255]),
+    );
+    let mut y = 0;
+    for f in figures {
+        blit(&mut out, f, 0, y);
+        y += f.height();
+        fill_rect(&mut out, 0, y, width, y + rule, INK);
+        y += rule;
+    }
+    Ok(out)
+}
+
+/// A figure of text lines only (for a part of a composed figure that cannot be drawn, saying
+/// why).
+pub fn text_figure(lines: &[String], text_px: f32) -> Result<RgbaImage> {
+    let px = text_px.clamp(8.0, 64.0);
+    let margin = (px * 1.2).round() as u32;
+    let width = (px * 60.0) as u32;
+    let lh = line_height(px).ceil() as u32;
+    let wrapped: Vec<String> = lines
+        .iter()
+        .flat_map(|l| wrap_text(l, px, (width - 2 * margin) as f32))
+        .collect();
+    let height = 2 * margin + lh * wrapped.len() as u32;
+    check_size(height, width)?;
+    let mut img = RgbaImage::from_pixel(
+        width,
+        height,
+        Rgba([BACKGROUND[0], BACKGROUND[1], BACKGROUND[2], 255]),
+    );
+    for (i, l) in wrapped.iter().enumerate() {
+        draw_text(
+            &mut img,
+            l,
+            margin as f32,
+            (margin + i as u32 * lh) as f32,
+            px,
+            INK,
+        );
+    }
+    Ok(img)
+}

@@ -11,7 +11,7 @@ pub mod text;
 
 pub use figure::{
     annotate_regions, compose_figure, default_figure_scale, figure_panel_style, figure_text_px,
-    outline_regions, scale_note, FigureSpec, PCA_NOTE,
+    outline_regions, scale_note, stack_figures, text_figure, FigureSpec, PCA_NOTE,
 };
 pub use legend::{format_tick, linear_ticks, log_ticks, render_legend, render_rgb_legend};
 pub use panel::{

@@ -6,6 +6,7 @@ mod common;
 mod architecture;
 mod bad_input;
 mod commands;
+mod compare;
 mod demo;
 mod hardening;
 mod real_window;
