@@ -509,7 +509,7 @@ impl Context<'_> {
         let figure_path = self
             .figures_dir
             .as_ref()
-            .map(|d| d.join(format!("{name}.compare.png")));
+            .map(|d| d.join(crate::io::figure_file_name(image, "compare")));
         let inputs = Inputs {
             settings: self.settings.clone(),
             image: hash,

@@ -520,7 +520,10 @@ fn compare_on_the_demo_pair_end_to_end() {
         .any(|r| r["tensor"] == "layers.3.blocks.1.mlp.fc2.weight"));
     assert!(out.join("unmatched.txt").is_file());
     for n in names {
-        let fig = out.join("figures").join(format!("{n}.compare.png"));
+        let fig = out.join("figures").join(mullion::io::figure_file_name(
+            std::path::Path::new(n),
+            "compare",
+        ));
         let img = image::open(&fig).unwrap();
         assert!(
             img.height() > 3 * 200,
@@ -802,7 +805,9 @@ fn other_widths_give_cka_without_cosine_and_other_depths_are_refused() {
         unmatched.contains("shapes differ: layers.0.blocks.0.attn.qkv.weight"),
         "{unmatched}"
     );
-    assert!(out.join("figures/tray-03-97x160.png.compare.png").is_file());
+    assert!(out
+        .join("figures/tray-03-97x160.compare.figure.png")
+        .is_file());
     let r = mullion(&[
         "compare",
         "--base",
