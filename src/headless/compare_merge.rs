@@ -8,7 +8,7 @@ use super::compare::{
     read_stage_rows, read_summary, write_stages, CompareSummary, Pool, StageRow, DRIFT_NAME,
     POOLED_IMAGE, POOLED_NAME, STAGES_NAME, SUMMARY_NAME, UNMATCHED_NAME,
 };
-use super::report::FailedImage;
+use super::report::{check_shard_set, FailedImage};
 use crate::error::{Error, Result};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -70,35 +70,16 @@ pub fn merge_compares(dirs: &[PathBuf], out: &Path) -> Result<CompareMergeOutcom
         .iter()
         .map(|d| read_part(d))
         .collect::<Result<Vec<_>>>()?;
-    let first = parts[0]
-        .summary
-        .shard
-        .clone()
-        .expect("checked in read_part");
-    let mut seen: BTreeMap<u32, &Path> = BTreeMap::new();
-    for p in &parts {
-        let s = p.summary.shard.as_ref().expect("checked in read_part");
-        if s.count != first.count || s.settings != first.settings {
-            return Err(Error::BadArgument(format!(
-                "{} is shard {} of {} ({}), but {} is of {} ({}): merge only shards of one run",
-                p.dir.display(),
-                s.index,
-                s.count,
-                s.settings,
-                parts[0].dir.display(),
-                first.count,
-                first.settings
-            )));
-        }
-        if let Some(other) = seen.insert(s.index, &p.dir) {
-            return Err(Error::BadArgument(format!(
-                "shard {} of {} is given twice: {} and {}",
-                s.index,
-                s.count,
-                other.display(),
-                p.dir.display()
-            )));
-        }
+    let shards: Vec<_> = parts
+        .iter()
+        .map(|p| {
+            let s = p.summary.shard.clone().expect("checked in read_part");
+            (p.dir.as_path(), s)
+        })
+        .collect();
+    check_shard_set(&shards)?;
+    // The drift and the unmatched list depend on the checkpoints only: every shard has the same.
+    for p in &parts[1..] {
         for (name, mine, theirs) in [
             (DRIFT_NAME, &p.drift, &parts[0].drift),
             (UNMATCHED_NAME, &p.unmatched, &parts[0].unmatched),
@@ -113,17 +94,6 @@ pub fn merge_compares(dirs: &[PathBuf], out: &Path) -> Result<CompareMergeOutcom
                 ));
             }
         }
-    }
-    let missing: Vec<String> = (1..=first.count)
-        .filter(|k| !seen.contains_key(k))
-        .map(|k| k.to_string())
-        .collect();
-    if !missing.is_empty() {
-        return Err(Error::BadArgument(format!(
-            "shards {} of {} are missing; a merge needs every shard",
-            missing.join(", "),
-            first.count
-        )));
     }
     let names = [
         STAGES_NAME,

@@ -7,7 +7,7 @@
 
 use super::compare_merge::{merge_compares, CompareMergeOutcome};
 use super::report::{
-    read_summary, FailedImage, Groups, ReportRow, Summary, CSV_NAME, SUMMARY_NAME,
+    check_shard_set, read_summary, FailedImage, Groups, ReportRow, Summary, CSV_NAME, SUMMARY_NAME,
 };
 use crate::error::{Error, Result};
 use std::collections::BTreeMap;
@@ -124,50 +124,20 @@ pub fn merge_reports(dirs: &[PathBuf], out: &Path) -> Result<MergeOutcome> {
             ))
         })
     };
-    let first = info(&parts[0])?;
-    let mut seen: BTreeMap<u32, &Path> = BTreeMap::new();
-    for p in &parts {
-        let s = info(p)?;
-        if s.count != first.count {
-            return Err(Error::BadArgument(format!(
-                "{} is shard {} of {}, but {} is of {}: they come from different splits",
-                p.dir.display(),
-                s.index,
-                s.count,
-                parts[0].dir.display(),
-                first.count
-            )));
-        }
-        if s.settings != first.settings || p.summary.map != parts[0].summary.map {
-            return Err(Error::BadArgument(format!(
-                "{} ran with other settings than {} ({} vs {}); merge only shards of one run",
-                p.dir.display(),
-                parts[0].dir.display(),
-                s.settings,
-                first.settings
-            )));
-        }
-        if let Some(other) = seen.insert(s.index, &p.dir) {
-            return Err(Error::BadArgument(format!(
-                "shard {} of {} is given twice: {} and {}",
-                s.index,
-                s.count,
-                other.display(),
-                p.dir.display()
-            )));
-        }
-    }
-    let missing: Vec<String> = (1..=first.count)
-        .filter(|k| !seen.contains_key(k))
-        .map(|k| k.to_string())
-        .collect();
-    if !missing.is_empty() {
+    let shards = parts
+        .iter()
+        .map(|p| Ok((p.dir.as_path(), info(p)?)))
+        .collect::<Result<Vec<_>>>()?;
+    if let Some(p) = parts.iter().find(|p| p.summary.map != parts[0].summary.map) {
         return Err(Error::BadArgument(format!(
-            "shards {} of {} are missing; a merge needs every shard",
-            missing.join(", "),
-            first.count
+            "{} measured map {} but {} map {}; merge only shards of one run",
+            p.dir.display(),
+            p.summary.map,
+            parts[0].dir.display(),
+            parts[0].summary.map
         )));
     }
+    check_shard_set(&shards)?;
 
     let csv_path = out.join(CSV_NAME);
     let summary_path = out.join(SUMMARY_NAME);

@@ -100,6 +100,57 @@ pub struct ShardInfo {
     pub settings: String,
 }
 
+/// Check that `shards` (folder, shard record) are every shard of one split run, each once: the
+/// same count and settings throughout, no index twice, none missing.
+pub fn check_shard_set(shards: &[(&Path, ShardInfo)]) -> Result<()> {
+    let Some((first_dir, first)) = shards.first() else {
+        return Err(Error::BadArgument("merge: give the shard folders".into()));
+    };
+    let mut seen: BTreeMap<u32, &Path> = BTreeMap::new();
+    for (dir, s) in shards {
+        if s.count != first.count {
+            return Err(Error::BadArgument(format!(
+                "{} is shard {} of {}, but {} is of {}: they come from different splits",
+                dir.display(),
+                s.index,
+                s.count,
+                first_dir.display(),
+                first.count
+            )));
+        }
+        if s.settings != first.settings {
+            return Err(Error::BadArgument(format!(
+                "{} ran with other settings than {} ({} vs {}); merge only shards of one run",
+                dir.display(),
+                first_dir.display(),
+                s.settings,
+                first.settings
+            )));
+        }
+        if let Some(other) = seen.insert(s.index, dir) {
+            return Err(Error::BadArgument(format!(
+                "shard {} of {} is given twice: {} and {}",
+                s.index,
+                s.count,
+                other.display(),
+                dir.display()
+            )));
+        }
+    }
+    let missing: Vec<String> = (1..=first.count)
+        .filter(|k| !seen.contains_key(k))
+        .map(|k| k.to_string())
+        .collect();
+    if !missing.is_empty() {
+        return Err(Error::BadArgument(format!(
+            "shards {} of {} are missing; a merge needs every shard",
+            missing.join(", "),
+            first.count
+        )));
+    }
+    Ok(())
+}
+
 impl ReportOptions {
     /// Options with every default (token norm, no figures), for calling [`run_report`] from code.
     pub fn new(session: SessionOptions, images: PathBuf, out: PathBuf) -> Self {

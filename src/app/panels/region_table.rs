@@ -91,7 +91,8 @@ impl RegionTable {
         });
         ui.small("fewer tokens inside or outside: AUROC marked few, sorted last");
         let min = self.min_tokens;
-        let mut rows = bench.regions.stats.clone();
+        // Sorted by reference: the rows themselves are not copied every frame.
+        let mut rows: Vec<&RegionStats> = bench.regions.stats.iter().collect();
         let (col, desc) = self.sort;
         rows.sort_by(|a, b| {
             let o = sort_key(a, col).total_cmp(&sort_key(b, col));
@@ -134,7 +135,7 @@ impl RegionTable {
                         }
                     }
                     ui.end_row();
-                    for s in &rows {
+                    for &s in &rows {
                         let sel = bench.regions.selected == Some(s.region);
                         if ui
                             .selectable_label(sel, format!("{} #{}", s.label, s.region))
