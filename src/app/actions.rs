@@ -12,6 +12,8 @@ pub enum Pick {
     Images,
     Folder,
     Weights,
+    /// A checkpoint for the base slot (A).
+    Base,
 }
 
 /// A change to the current image's regions, labels or pins.
@@ -53,6 +55,13 @@ pub enum Action {
     OpenPaths(Vec<PathBuf>),
     /// A path typed by the user (checked to exist first).
     OpenTyped(String),
+    /// A checkpoint for the base slot (A), the one the checkpoint on screen is compared with.
+    OpenBase(PathBuf),
+    /// A typed path for the base slot.
+    OpenTypedBase(String),
+    /// Leave the comparison: close the base checkpoint.
+    CloseBase,
+    ShowDrift(bool),
     Pick(Pick),
     NextImage,
     PreviousImage,

@@ -20,6 +20,8 @@ pub struct ExportRequest {
     /// How the image became the network input, for the caption.
     pub policy: String,
     pub checkpoint: String,
+    /// The base checkpoint's name when comparing: the comparison figure is saved too.
+    pub base: Option<String>,
     pub paths: ExportPaths,
     /// The region statistics of the maps on screen (written beside the figure when any).
     pub rows: Vec<crate::analysis::RegionStats>,
@@ -33,6 +35,9 @@ pub struct ExportPaths {
     pub stats_csv: PathBuf,
     /// The region statistics table, as the report's `regions.csv` rows.
     pub regions_csv: PathBuf,
+    /// The comparison figure (A, B and the difference), `<stem>.compare.figure.png`, the name
+    /// `mullion compare --figures` gives it.
+    pub comparison_png: PathBuf,
 }
 
 impl ExportPaths {
@@ -46,6 +51,7 @@ impl ExportPaths {
             stats_json: dir.join(format!("{base}.stats.json")),
             stats_csv: dir.join(format!("{base}.stats.csv")),
             regions_csv: dir.join(format!("{base}.regions.csv")),
+            comparison_png: dir.join(crate::io::figure_file_name(image, "compare")),
         }
     }
 }
@@ -57,6 +63,8 @@ pub struct Exported {
     pub notes: Vec<String>,
     /// Whether statistics were written (scalar maps only).
     pub stats: bool,
+    /// The comparison figure, when two checkpoints were on screen.
+    pub comparison: Option<PathBuf>,
 }
 
 /// Compose and write the figure and the statistics.
@@ -111,9 +119,37 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
             &crate::analysis::rows_csv(&req.rows)?,
         )?;
     }
+    let comparison = match (&maps.pair, &req.base) {
+        (Some(pair), Some(base)) => {
+            let mut pair_notes = vec![format!("input policy: {}", req.policy)];
+            pair_notes.push(if pair.a.iter().all(|s| s.range.is_some()) {
+                render::scale_note(&maps.key.spec, req.draw.colormap)
+            } else {
+                format!("{} (A and B fitted separately)", render::PCA_NOTE)
+            });
+            let fig = render::compose_pair_figure(&render::PairFigureSpec {
+                image: &annotated,
+                geometry: &maps.outputs.geometry,
+                pair,
+                style: render::figure_panel_style(
+                    req.draw.colormap,
+                    req.draw.opacity,
+                    req.overlays,
+                    scale,
+                ),
+                names: (base.clone(), req.checkpoint.clone()),
+                notes: pair_notes,
+                text_px: render::figure_text_px(scale),
+            })?;
+            crate::io::save_png_atomic(&fig, &req.paths.comparison_png)?;
+            Some(req.paths.comparison_png.clone())
+        }
+        _ => None,
+    };
     Ok(Exported {
         png: req.paths.png.clone(),
         notes,
         stats: stats.is_some(),
+        comparison,
     })
 }

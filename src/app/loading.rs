@@ -4,6 +4,8 @@
 
 use super::actions::Pick;
 use super::region_doc::{read_sidecar, sidecar_path_for, LoadedSidecar};
+use crate::analysis::compare::{weight_drift, Drift};
+use crate::engine::checkpoint::Checkpoint;
 use crate::engine::input::load_image;
 use crate::engine::{open_checkpoint, LoadedCheckpoint};
 use crate::error::Result;
@@ -23,13 +25,29 @@ pub enum Loaded {
     },
     Weights {
         path: PathBuf,
+        slot: Slot,
         result: Result<LoadedCheckpoint>,
     },
-    /// Paths chosen in a file dialog.
-    Picked(Vec<PathBuf>),
+    /// The weight drift between the base (A) and the checkpoint (B), for the pair it names.
+    Drift {
+        pair: (PathBuf, PathBuf),
+        result: Result<Drift>,
+    },
+    /// Paths chosen in a file dialog, and for what.
+    Picked(Pick, Vec<PathBuf>),
     /// The dialog gave nothing; `at_once` when it returned before anyone could have chosen
     /// (no dialog service on this desktop).
     PickedNothing { at_once: bool },
+}
+
+/// Which checkpoint slot a load fills.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Slot {
+    /// The checkpoint under review (B when a base is loaded).
+    Main,
+    /// The checkpoint it is compared with (A: the base it was fine-tuned from, or the previous
+    /// release).
+    Base,
 }
 
 /// A wake-up for the window when a thread is done.
@@ -46,9 +64,14 @@ pub struct Loader {
     rx: Receiver<Envelope>,
     image_generation: u64,
     weights_generation: u64,
-    /// The image and checkpoint being loaded now, for the status line.
+    base_generation: u64,
+    drift_generation: u64,
+    /// The image and checkpoints being loaded now, for the status line.
     pub loading_image: Option<PathBuf>,
     pub loading_weights: Option<PathBuf>,
+    pub loading_base: Option<PathBuf>,
+    /// The checkpoint pair whose weight drift is being computed.
+    pub computing_drift: Option<(PathBuf, PathBuf)>,
     picking: usize,
 }
 
@@ -60,8 +83,12 @@ impl Default for Loader {
             rx,
             image_generation: 0,
             weights_generation: 0,
+            base_generation: 0,
+            drift_generation: 0,
             loading_image: None,
             loading_weights: None,
+            loading_base: None,
+            computing_drift: None,
             picking: 0,
         }
     }
@@ -76,7 +103,10 @@ fn spawn(name: &str, job: impl FnOnce() + Send + 'static) {
 
 impl Loader {
     pub fn is_busy(&self) -> bool {
-        self.loading_image.is_some() || self.loading_weights.is_some()
+        self.loading_image.is_some()
+            || self.loading_weights.is_some()
+            || self.loading_base.is_some()
+            || self.computing_drift.is_some()
     }
 
     /// Decode `path` and read its region file (kept in `project_dir`, or next to it).
@@ -104,22 +134,65 @@ impl Loader {
         });
     }
 
-    /// Open the checkpoint at `path` and build its backbone.
-    pub fn load_weights(&mut self, path: PathBuf, wake: Wake) {
-        self.weights_generation += 1;
-        let generation = self.weights_generation;
-        self.loading_weights = Some(path.clone());
+    /// Open the checkpoint at `path` and build its backbone, for `slot`.
+    pub fn load_weights(&mut self, path: PathBuf, slot: Slot, wake: Wake) {
+        let generation = match slot {
+            Slot::Main => {
+                self.weights_generation += 1;
+                self.loading_weights = Some(path.clone());
+                self.weights_generation
+            }
+            Slot::Base => {
+                self.base_generation += 1;
+                self.loading_base = Some(path.clone());
+                self.base_generation
+            }
+        };
         let tx = self.tx.clone();
         spawn("mullion-load-checkpoint", move || {
             let result = open_checkpoint(&path, None);
             let _ = tx.send(Envelope {
                 generation,
-                loaded: Loaded::Weights { path, result },
+                loaded: Loaded::Weights { path, slot, result },
             });
             if let Some(w) = wake {
                 w();
             }
         });
+    }
+
+    /// Compare every weight tensor of `base` (A) with `tuned` (B) on a thread.
+    pub fn compute_drift(&mut self, base: PathBuf, tuned: PathBuf, wake: Wake) {
+        self.drift_generation += 1;
+        let generation = self.drift_generation;
+        self.computing_drift = Some((base.clone(), tuned.clone()));
+        let tx = self.tx.clone();
+        spawn("mullion-drift", move || {
+            let result = Checkpoint::open(&base)
+                .and_then(|a| Checkpoint::open(&tuned).and_then(|b| weight_drift(&a, &b)));
+            let _ = tx.send(Envelope {
+                generation,
+                loaded: Loaded::Drift {
+                    pair: (base, tuned),
+                    result,
+                },
+            });
+            if let Some(w) = wake {
+                w();
+            }
+        });
+    }
+
+    /// Forget a drift being computed (a checkpoint of the pair changed or was closed).
+    pub fn drop_drift(&mut self) {
+        self.drift_generation += 1;
+        self.computing_drift = None;
+    }
+
+    /// Forget the base checkpoint being loaded (the base was closed).
+    pub fn drop_base(&mut self) {
+        self.base_generation += 1;
+        self.loading_base = None;
     }
 
     /// Show a native file dialog on its own thread.
@@ -130,7 +203,7 @@ impl Loader {
             let start = Instant::now();
             let dialog = rfd::FileDialog::new();
             let chosen = match what {
-                Pick::Weights => dialog
+                Pick::Weights | Pick::Base => dialog
                     .add_filter("checkpoint", &WEIGHT_EXTENSIONS)
                     .pick_file()
                     .map(|p| vec![p]),
@@ -138,7 +211,7 @@ impl Loader {
                 Pick::Images => dialog.add_filter("image", &IMAGE_EXTENSIONS).pick_files(),
             };
             let loaded = match chosen {
-                Some(paths) if !paths.is_empty() => Loaded::Picked(paths),
+                Some(paths) if !paths.is_empty() => Loaded::Picked(what, paths),
                 _ => Loaded::PickedNothing {
                     at_once: start.elapsed() < Duration::from_millis(150),
                 },
@@ -163,13 +236,29 @@ impl Loader {
                     }
                     self.loading_image = None;
                 }
-                Loaded::Weights { .. } => {
+                Loaded::Weights {
+                    slot: Slot::Main, ..
+                } => {
                     if env.generation != self.weights_generation {
                         continue;
                     }
                     self.loading_weights = None;
                 }
-                Loaded::Picked(_) | Loaded::PickedNothing { .. } => {
+                Loaded::Weights {
+                    slot: Slot::Base, ..
+                } => {
+                    if env.generation != self.base_generation {
+                        continue;
+                    }
+                    self.loading_base = None;
+                }
+                Loaded::Drift { .. } => {
+                    if env.generation != self.drift_generation {
+                        continue;
+                    }
+                    self.computing_drift = None;
+                }
+                Loaded::Picked(..) | Loaded::PickedNothing { .. } => {
                     self.picking = self.picking.saturating_sub(1);
                 }
             }

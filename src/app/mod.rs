@@ -44,9 +44,23 @@ impl eframe::App for WindowApp {
 /// The window's size when none is asked for, in points.
 pub const DEFAULT_SIZE: (f32, f32) = (1400.0, 900.0);
 
-/// Open the window on `images` with `weights` (or random weights, said so on screen), at
-/// `size` points (default [`DEFAULT_SIZE`]).
-pub fn run(images: Vec<PathBuf>, weights: Option<PathBuf>, size: Option<(f32, f32)>) -> Result<()> {
+/// What the window opens with.
+#[derive(Clone, Debug, Default)]
+pub struct Opening {
+    pub images: Vec<PathBuf>,
+    /// The checkpoint (B when a base is given); random weights, said so on screen, when none.
+    pub weights: Option<PathBuf>,
+    /// A checkpoint to compare with (A).
+    pub base: Option<PathBuf>,
+}
+
+/// Open the window on `open`, at `size` points (default [`DEFAULT_SIZE`]).
+pub fn run(open: Opening, size: Option<(f32, f32)>) -> Result<()> {
+    let Opening {
+        images,
+        weights,
+        base,
+    } = open;
     let (w, h) = size.unwrap_or(DEFAULT_SIZE);
     let options = eframe::NativeOptions {
         viewport: egui::ViewportBuilder::default()
@@ -71,6 +85,9 @@ pub fn run(images: Vec<PathBuf>, weights: Option<PathBuf>, size: Option<(f32, f3
                 }
                 None => window.bench.use_random_weights(),
             }
+            if let Some(b) = &base {
+                window.bench.open_base(b);
+            }
             window.bench.open_paths(&images);
             Ok(Box::new(WindowApp { window }))
         }),
@@ -78,9 +95,16 @@ pub fn run(images: Vec<PathBuf>, weights: Option<PathBuf>, size: Option<(f32, f3
     .map_err(|e| Error::Internal(format!("cannot open the window: {e}")))
 }
 
-/// The bundled demo: sample images and the demo checkpoint when present.
-pub fn demo_inputs() -> (Vec<PathBuf>, Option<PathBuf>) {
+/// The bundled demo: the sample images, the final demo checkpoint (B) and, to compare it
+/// with, the early one it was trained from (A), when present.
+pub fn demo_inputs() -> Opening {
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("sample-data");
     let weights = root.join("demo.safetensors");
-    (vec![root], weights.exists().then_some(weights))
+    let base = root.join("demo-early.safetensors");
+    let has_weights = weights.exists();
+    Opening {
+        images: vec![root],
+        weights: has_weights.then_some(weights),
+        base: (has_weights && base.exists()).then_some(base),
+    }
 }

@@ -8,8 +8,9 @@
 //! new caption; when only the drawing changes the old pictures stay until the new ones arrive.
 
 use super::settings::Settings;
+use crate::analysis::compare::{pair_problem, prepare_pair_view, DifferenceStage, PairView};
 use crate::analysis::{
-    parse_map_kind, prepare_stages, rank_channels, Colormap, Map, PreparedStage, ScaleSpec,
+    parse_map_kind, prepare_stage_pair, rank_channels, Colormap, Map, PreparedStage, ScaleSpec,
 };
 use crate::engine::StageOutputs;
 use crate::error::{Error, Result};
@@ -31,6 +32,8 @@ pub const THREAD_NAME: &str = "mullion-pictures";
 pub struct MapKey {
     /// The result (image, checkpoint, input policy, normalisation).
     pub run: String,
+    /// The base checkpoint's result for the same image, when comparing.
+    pub base_run: Option<String>,
     /// The map kind's id (`norm`, `channel:4`, `pca`).
     pub map: String,
     pub spec: ScaleSpec,
@@ -48,9 +51,10 @@ pub struct DrawKey {
 }
 
 impl MapKey {
-    pub fn of(run: &str, s: &Settings) -> MapKey {
+    pub fn of(run: &str, base_run: Option<&str>, s: &Settings) -> MapKey {
         MapKey {
             run: run.to_string(),
+            base_run: base_run.map(str::to_string),
             map: s.map_id(),
             spec: s.scale_spec(),
         }
@@ -103,6 +107,12 @@ pub struct PreparedMaps {
     pub ranking: Vec<Vec<(usize, f32)>>,
     /// The thread the preparation ran on (the GUI thread never prepares maps).
     pub made_on: String,
+    /// The base checkpoint's (A's) pass of the same image, when comparing.
+    pub base_outputs: Option<Arc<StageOutputs>>,
+    /// A's and B's maps, the difference and CKA per stage, when comparing.
+    pub pair: Option<PairView>,
+    /// Why the two passes cannot be compared token by token, when they cannot.
+    pub pair_problem: Option<String>,
 }
 
 impl PreparedMaps {
@@ -123,14 +133,59 @@ impl PreparedMaps {
             return None;
         }
         let i = row * cols + col;
-        Some(match map {
-            Map::Scalar { values, .. } => format!("value {:.4}", values.get(i)?),
-            Map::Rgb { values, .. } => {
-                let v = values.get(i)?;
-                format!("rgb {:.2} {:.2} {:.2}", v[0], v[1], v[2])
-            }
-        })
+        describe_value(map, i)
     }
+
+    /// When comparing: A's and B's raw values of the rows' kind and the cosine of token
+    /// (row, col) of `stage`.
+    pub fn pair_at(&self, stage: usize, row: usize, col: usize) -> Option<String> {
+        let pair = self.pair.as_ref()?;
+        let (rows, cols) = pair.a_raw.get(stage)?.dims();
+        if row >= rows || col >= cols {
+            return None;
+        }
+        let i = row * cols + col;
+        let (a, b) = (
+            describe_value(pair.a_raw.get(stage)?, i)?,
+            describe_value(pair.b_raw.get(stage)?, i)?,
+        );
+        let cos = pair
+            .cosine_at(stage, row, col)
+            .map_or("no cosine (widths differ)".to_string(), |c| {
+                format!("cosine {c:.4}")
+            });
+        Some(format!("A {a}, B {b}, {cos}"))
+    }
+}
+
+/// Token `i` of a map as text.
+fn describe_value(map: &Map, i: usize) -> Option<String> {
+    Some(match map {
+        Map::Scalar { values, .. } => format!("value {:.4}", values.get(i)?),
+        Map::Rgb { values, .. } => {
+            let v = values.get(i)?;
+            format!("rgb {:.2} {:.2} {:.2}", v[0], v[1], v[2])
+        }
+    })
+}
+
+/// The comparison pictures of one draw: per stage A's map, B's map (one legend for both) and
+/// the difference map with its legend (`None` where a stage has no difference map).
+pub struct PairDrawn {
+    pub a: Vec<RgbaImage>,
+    pub b: Vec<RgbaImage>,
+    pub ab_legends: Vec<RgbaImage>,
+    pub difference: Vec<Option<RgbaImage>>,
+    pub difference_legends: Vec<Option<RgbaImage>>,
+}
+
+/// [`PairDrawn`] as textures.
+pub struct PairTextures {
+    pub a: Vec<TextureHandle>,
+    pub b: Vec<TextureHandle>,
+    pub ab_legends: Vec<TextureHandle>,
+    pub difference: Vec<Option<TextureHandle>>,
+    pub difference_legends: Vec<Option<TextureHandle>>,
 }
 
 /// The pictures of one draw, as pixels (made on the job thread).
@@ -141,6 +196,7 @@ pub struct Drawn {
     pub lens: Option<RgbaImage>,
     pub lens_scale: f32,
     pub legends: Vec<RgbaImage>,
+    pub pair: Option<PairDrawn>,
 }
 
 /// The pictures of one draw, as textures.
@@ -150,6 +206,7 @@ pub struct Textures {
     pub strip: Vec<TextureHandle>,
     pub lens: Option<TextureHandle>,
     pub legends: Vec<TextureHandle>,
+    pub pair: Option<PairTextures>,
 }
 
 /// How often each kind of work ran (for the tests that check what a change costs).
@@ -193,9 +250,65 @@ fn next_id() -> u64 {
     NEXT.fetch_add(1, Ordering::Relaxed)
 }
 
+/// A legend picture for a prepared stage.
+fn legend_of(st: &PreparedStage, colormap: Colormap) -> RgbaImage {
+    match &st.range {
+        Some(r) => render::render_legend(colormap, r, 240, 40),
+        None => render::render_rgb_legend(st.explained.as_deref(), 240, 40),
+    }
+}
+
+/// Draw the comparison rows.
+fn draw_pair(
+    pair: &PairView,
+    input: &RgbImage,
+    g: &crate::engine::geometry::Geometry,
+    draw_key: &DrawKey,
+) -> Result<PairDrawn> {
+    let style = draw_key.style(1.0);
+    let row = |stages: &[PreparedStage]| -> Result<Vec<RgbaImage>> {
+        stages
+            .iter()
+            .map(|st| render::render_panel(input, &st.map, g, st.stage, &style))
+            .collect()
+    };
+    let mut difference = Vec::new();
+    let mut difference_legends = Vec::new();
+    for d in &pair.difference {
+        match d {
+            DifferenceStage::Shown { prepared, .. } => {
+                difference.push(Some(render::render_panel(
+                    input,
+                    &prepared.map,
+                    g,
+                    prepared.stage,
+                    &style,
+                )?));
+                difference_legends.push(Some(legend_of(prepared, draw_key.colormap)));
+            }
+            DifferenceStage::Absent(_) => {
+                difference.push(None);
+                difference_legends.push(None);
+            }
+        }
+    }
+    Ok(PairDrawn {
+        a: row(&pair.a)?,
+        b: row(&pair.b)?,
+        ab_legends: pair
+            .a
+            .iter()
+            .map(|st| legend_of(st, draw_key.colormap))
+            .collect(),
+        difference,
+        difference_legends,
+    })
+}
+
 /// Prepare (unless `reuse` already has them) and draw, on the job thread.
 fn work(
     outputs: Arc<StageOutputs>,
+    base: Option<Arc<StageOutputs>>,
     input: Arc<RgbImage>,
     image_size: (u32, u32),
     map_key: MapKey,
@@ -207,7 +320,18 @@ fn work(
         None => {
             map_key.spec.validate()?;
             let kind = parse_map_kind(&map_key.map)?;
-            let (raw, stages) = prepare_stages(&outputs, kind.as_ref(), &map_key.spec)?;
+            let problem = base.as_ref().and_then(|b| pair_problem(b, &outputs));
+            // The pair is A (base) and B (this checkpoint); a kind that compares needs both.
+            let other = base.as_deref().filter(|_| problem.is_none());
+            if kind.needs_pair() && other.is_none() {
+                return Err(Error::BadArgument(problem.unwrap_or_else(|| {
+                    "this map compares two checkpoints: open a base checkpoint (A) first".into()
+                })));
+            }
+            let (raw, stages) = prepare_stage_pair(&outputs, other, kind.as_ref(), &map_key.spec)?;
+            let pair = other
+                .map(|b| prepare_pair_view(b, &outputs, kind.as_ref(), &map_key.spec))
+                .transpose()?;
             let ranking = (0..outputs.stages.len())
                 .map(|s| {
                     rank_channels(&outputs, s)
@@ -226,6 +350,9 @@ fn work(
                 map_label: kind.label(),
                 ranking,
                 made_on: std::thread::current().name().unwrap_or("").to_string(),
+                base_outputs: base.clone(),
+                pair,
+                pair_problem: problem,
             })
         }
     };
@@ -245,11 +372,13 @@ fn work(
     let legends = maps
         .stages
         .iter()
-        .map(|st| match &st.range {
-            Some(r) => render::render_legend(draw_key.colormap, r, 240, 40),
-            None => render::render_rgb_legend(st.explained.as_deref(), 240, 40),
-        })
+        .map(|st| legend_of(st, draw_key.colormap))
         .collect();
+    let pair = maps
+        .pair
+        .as_ref()
+        .map(|p| draw_pair(p, &input, g, &draw_key))
+        .transpose()?;
     let image = image::DynamicImage::ImageRgb8((*input).clone()).to_rgba8();
     Ok((
         maps,
@@ -260,6 +389,7 @@ fn work(
             lens,
             lens_scale: scale,
             legends,
+            pair,
         },
     ))
 }
@@ -297,12 +427,13 @@ impl Pictures {
         &mut self,
         run: &str,
         outputs: &Arc<StageOutputs>,
+        base: Option<(&str, &Arc<StageOutputs>)>,
         input: &Arc<RgbImage>,
         image_size: (u32, u32),
         settings: &Settings,
         wake: Option<Box<dyn Fn() + Send>>,
     ) {
-        let map_key = MapKey::of(run, settings);
+        let map_key = MapKey::of(run, base.map(|b| b.0), settings);
         let draw_key = DrawKey::of(settings, outputs.stages.len());
         if self
             .job
@@ -337,6 +468,7 @@ impl Pictures {
             None
         };
         let (tx, rx) = channel();
+        let base = base.map(|b| b.1.clone());
         let (o, i, mk, dk) = (
             outputs.clone(),
             input.clone(),
@@ -347,7 +479,7 @@ impl Pictures {
             .name(THREAD_NAME.into())
             .spawn(move || {
                 let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                    work(o, i, image_size, mk, dk, reuse)
+                    work(o, base, i, image_size, mk, dk, reuse)
                 }))
                 .unwrap_or_else(|_| Err(Error::Internal("preparing the maps panicked".into())));
                 let _ = tx.send(r);
@@ -428,6 +560,31 @@ impl Pictures {
                 .enumerate()
                 .map(|(i, img)| tex(format!("legend{i}"), img, TextureOptions::LINEAR))
                 .collect(),
+            pair: d.pair.as_ref().map(|p| {
+                let row = |prefix: &str, imgs: &[RgbaImage], opts| {
+                    imgs.iter()
+                        .enumerate()
+                        .map(|(i, img)| tex(format!("{prefix}{i}"), img, opts))
+                        .collect::<Vec<_>>()
+                };
+                let opt_row = |prefix: &str, imgs: &[Option<RgbaImage>], opts| {
+                    imgs.iter()
+                        .enumerate()
+                        .map(|(i, img)| img.as_ref().map(|m| tex(format!("{prefix}{i}"), m, opts)))
+                        .collect::<Vec<_>>()
+                };
+                PairTextures {
+                    a: row("a-stage", &p.a, TextureOptions::NEAREST),
+                    b: row("b-stage", &p.b, TextureOptions::NEAREST),
+                    ab_legends: row("ab-legend", &p.ab_legends, TextureOptions::LINEAR),
+                    difference: opt_row("diff-stage", &p.difference, TextureOptions::NEAREST),
+                    difference_legends: opt_row(
+                        "diff-legend",
+                        &p.difference_legends,
+                        TextureOptions::LINEAR,
+                    ),
+                }
+            }),
             key: d.key,
         });
     }

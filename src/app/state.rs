@@ -8,10 +8,11 @@
 
 use super::actions::{Action, Pick};
 use super::export::{export, ExportPaths, ExportRequest, Exported};
-use super::loading::{Loaded, Loader, Wake};
+use super::loading::{Loaded, Loader, Slot, Wake};
 use super::pictures::{DrawKey, Pictures};
 use super::region_doc::RegionDoc;
 use super::settings::Settings;
+use crate::analysis::compare::{group_drift, Drift, GroupDrift};
 use crate::engine::input::DEFAULT_MEMORY_LIMIT;
 use crate::engine::worker::{Event, Job};
 use crate::engine::{Backbone, Config, ForwardOptions, LoadReport, Progress, StageOutputs};
@@ -65,6 +66,16 @@ pub struct Shown {
     pub outputs: Arc<StageOutputs>,
 }
 
+/// The weight drift between the base (A) and the checkpoint (B).
+pub struct DriftView {
+    /// The files compared: (A, B).
+    pub pair: (PathBuf, PathBuf),
+    /// The per-tensor rows and what could not be compared, or why the comparison failed.
+    pub result: std::result::Result<Drift, String>,
+    /// The rows joined into weight groups per block, for the chart.
+    pub groups: Vec<GroupDrift>,
+}
+
 /// A running forward pass.
 struct Pending {
     key: String,
@@ -80,6 +91,13 @@ pub struct Workbench {
     pub image: Option<LoadedImage>,
     pub weights: Option<LoadedWeights>,
     pub shown: Option<Shown>,
+    /// The checkpoint the one on screen is compared with (A; the one on screen is then B).
+    pub base: Option<LoadedWeights>,
+    /// The base checkpoint's pass of the current image.
+    pub shown_base: Option<Shown>,
+    /// The weight drift of the pair, once both checkpoints are files.
+    pub drift: Option<DriftView>,
+    pub show_drift: bool,
     /// Why there is no result for the current image and checkpoint (a failed or cancelled run).
     pub run_problem: Option<String>,
     pub messages: Vec<Message>,
@@ -97,6 +115,7 @@ pub struct Workbench {
     /// Bumped when the path field should take the keyboard (no file dialog could be shown).
     pub path_focus_requests: u64,
     pending: Option<Pending>,
+    pending_base: Option<Pending>,
     exporting: Option<Receiver<Result<Exported>>>,
     cache: HashMap<String, (Arc<image::RgbImage>, Arc<StageOutputs>)>,
     cache_order: Vec<String>,
@@ -104,7 +123,11 @@ pub struct Workbench {
 }
 
 impl Workbench {
-    pub fn new(settings: Settings) -> Self {
+    pub fn new(mut settings: Settings) -> Self {
+        // The difference map needs a base, which is never open at start.
+        if settings.map_kind == "difference" {
+            settings.map_kind = "norm".into();
+        }
         Workbench {
             settings,
             images: Vec::new(),
@@ -112,6 +135,10 @@ impl Workbench {
             image: None,
             weights: None,
             shown: None,
+            base: None,
+            shown_base: None,
+            drift: None,
+            show_drift: false,
             run_problem: None,
             messages: Vec::new(),
             show_help: false,
@@ -124,6 +151,7 @@ impl Workbench {
             random_if_weights_fail: false,
             path_focus_requests: 0,
             pending: None,
+            pending_base: None,
             exporting: None,
             cache: HashMap::new(),
             cache_order: Vec::new(),
@@ -216,6 +244,7 @@ impl Workbench {
         self.cancel_run();
         self.image = None;
         self.shown = None;
+        self.shown_base = None;
         self.run_problem = None;
         self.pictures.clear();
         self.regions.close();
@@ -239,7 +268,60 @@ impl Workbench {
     /// Load a checkpoint on a loader thread; on failure the previous one stays.
     pub fn open_weights(&mut self, path: &Path) {
         let wake = self.wake();
-        self.loader.load_weights(path.to_path_buf(), wake);
+        self.loader
+            .load_weights(path.to_path_buf(), Slot::Main, wake);
+    }
+
+    /// Load the checkpoint to compare with (A) on a loader thread; on failure the previous
+    /// base stays.
+    pub fn open_base(&mut self, path: &Path) {
+        if path.is_dir() || !is_weights_path(path) {
+            self.error(format!(
+                "{}: not a checkpoint (by its file ending); a base needs a checkpoint file",
+                path.display()
+            ));
+            return;
+        }
+        let wake = self.wake();
+        self.loader
+            .load_weights(path.to_path_buf(), Slot::Base, wake);
+    }
+
+    /// Leave the comparison: the base, its runs and the drift go; the view shows one
+    /// checkpoint again.
+    pub fn close_base(&mut self) {
+        self.loader.drop_base();
+        self.loader.drop_drift();
+        if let Some(p) = self.pending_base.take() {
+            p.job.cancel();
+        }
+        self.base = None;
+        self.shown_base = None;
+        self.drift = None;
+        self.show_drift = false;
+        if self.settings.map_kind == "difference" {
+            self.settings.map_kind = "norm".into();
+        }
+        self.pictures.clear();
+    }
+
+    /// Whether two checkpoints are loaded (the comparison view).
+    pub fn comparing(&self) -> bool {
+        self.base.is_some() && self.weights.is_some()
+    }
+
+    /// Start the weight drift of the pair when both checkpoints are files.
+    fn start_drift(&mut self) {
+        self.drift = None;
+        self.loader.drop_drift();
+        let (Some(a), Some(b)) = (
+            self.base.as_ref().and_then(|w| w.path.clone()),
+            self.weights.as_ref().and_then(|w| w.path.clone()),
+        ) else {
+            return;
+        };
+        let wake = self.wake();
+        self.loader.compute_drift(a, b, wake);
     }
 
     /// A small randomly initialised model, for when no checkpoint is at hand.
@@ -293,7 +375,47 @@ impl Workbench {
                 }
                 Err(e) => self.error(e),
             },
-            Loaded::Weights { path, result } => match result {
+            Loaded::Weights {
+                path,
+                slot: Slot::Base,
+                result,
+            } => match result {
+                Ok(loaded) => {
+                    Settings::remember(&mut self.settings.recent_weights, &path);
+                    let name = file_name(&path);
+                    self.info(format!(
+                        "loaded base (A) {name}: {} layout, depths {:?}",
+                        loaded.report.layout, loaded.model.config.depths
+                    ));
+                    self.shown_base = None;
+                    self.base = Some(LoadedWeights {
+                        name,
+                        path: Some(path),
+                        model: Arc::new(loaded.model),
+                        report: Some(loaded.report),
+                        random: false,
+                    });
+                    self.start_drift();
+                    self.request();
+                }
+                Err(e) => self.error(format!("base (A) not loaded: {e}")),
+            },
+            Loaded::Drift { pair, result } => {
+                let groups = result.as_ref().map(group_drift).unwrap_or_default();
+                if let Err(e) = &result {
+                    self.error(format!("weight drift: {e}"));
+                }
+                self.drift = Some(DriftView {
+                    pair,
+                    result: result.map_err(|e| e.to_string()),
+                    groups,
+                });
+            }
+            Loaded::Weights {
+                path,
+                slot: Slot::Main,
+                result,
+            } => match result {
                 Ok(loaded) => {
                     Settings::remember(&mut self.settings.recent_weights, &path);
                     let name = file_name(&path);
@@ -312,6 +434,9 @@ impl Workbench {
                         .settings
                         .focus_stage
                         .min(self.n_stages().saturating_sub(1));
+                    if self.base.is_some() {
+                        self.start_drift();
+                    }
                     self.request();
                 }
                 Err(e) => {
@@ -322,7 +447,12 @@ impl Workbench {
                     }
                 }
             },
-            Loaded::Picked(paths) => self.open_paths(&paths),
+            Loaded::Picked(Pick::Base, paths) => {
+                if let Some(p) = paths.first() {
+                    self.open_base(p)
+                }
+            }
+            Loaded::Picked(_, paths) => self.open_paths(&paths),
             Loaded::PickedNothing { at_once: true } => {
                 self.path_focus_requests += 1;
                 self.error(
@@ -342,9 +472,8 @@ impl Workbench {
 
     // ---- running -------------------------------------------------------------------------
 
-    fn cache_key(&self) -> Option<String> {
+    fn cache_key(&self, w: &LoadedWeights) -> Option<String> {
         let img = self.image.as_ref()?;
-        let w = self.weights.as_ref()?;
         let weights_id = w
             .path
             .as_ref()
@@ -359,28 +488,64 @@ impl Workbench {
         ))
     }
 
-    /// Ask for the current image and checkpoint: from the cache, or a new worker job. What is
-    /// on screen is cleared first, so the maps always belong to the image and settings named.
-    pub fn request(&mut self) {
-        let Some(key) = self.cache_key() else { return };
-        if self.shown.as_ref().is_some_and(|s| s.key == key)
-            || self.pending.as_ref().is_some_and(|p| p.key == key)
-        {
-            return;
+    fn slot_weights(&self, slot: Slot) -> Option<&LoadedWeights> {
+        match slot {
+            Slot::Main => self.weights.as_ref(),
+            Slot::Base => self.base.as_ref(),
         }
-        self.cancel_run();
-        self.shown = None;
-        self.run_problem = None;
-        self.pictures.clear();
-        if let Some((input, outputs)) = self.cache.get(&key).cloned() {
-            self.shown = Some(Shown {
-                key,
+    }
+
+    fn slot_state(&mut self, slot: Slot) -> (&mut Option<Shown>, &mut Option<Pending>) {
+        match slot {
+            Slot::Main => (&mut self.shown, &mut self.pending),
+            Slot::Base => (&mut self.shown_base, &mut self.pending_base),
+        }
+    }
+
+    /// Ask for the current image through the checkpoint and, when comparing, through the base:
+    /// from the cache, or new worker jobs. What is on screen is cleared first, so the maps
+    /// always belong to the image and settings named.
+    pub fn request(&mut self) {
+        self.request_slot(Slot::Main);
+        self.request_slot(Slot::Base);
+    }
+
+    fn request_slot(&mut self, slot: Slot) {
+        let key = self.slot_weights(slot).and_then(|w| self.cache_key(w));
+        let Some(key) = key else {
+            let (shown, pending) = self.slot_state(slot);
+            if let Some(p) = pending.take() {
+                p.job.cancel();
+            }
+            *shown = None;
+            return;
+        };
+        {
+            let (shown, pending) = self.slot_state(slot);
+            if shown.as_ref().is_some_and(|s| s.key == key)
+                || pending.as_ref().is_some_and(|p| p.key == key)
+            {
+                return;
+            }
+        }
+        let cached = self.cache.get(&key).cloned();
+        {
+            let (shown, pending) = self.slot_state(slot);
+            if let Some(p) = pending.take() {
+                p.job.cancel();
+            }
+            *shown = cached.map(|(input, outputs)| Shown {
+                key: key.clone(),
                 input,
                 outputs,
             });
+        }
+        self.run_problem = None;
+        self.pictures.clear();
+        if self.slot_state(slot).0.is_some() {
             return;
         }
-        let (Some(img), Some(w)) = (&self.image, &self.weights) else {
+        let (Some(img), Some(w)) = (&self.image, self.slot_weights(slot)) else {
             return;
         };
         let model = w.model.clone();
@@ -395,7 +560,8 @@ impl Workbench {
             )
             .and_then(|_| self.settings.norm.validate());
         if let Err(e) = checked {
-            let msg = format!("{}: {e}", img.path.display());
+            let which = if slot == Slot::Base { "base (A): " } else { "" };
+            let msg = format!("{which}{}: {e}", img.path.display());
             self.run_problem = Some(msg.clone());
             self.error(msg);
             return;
@@ -415,7 +581,7 @@ impl Workbench {
             },
             wake,
         );
-        self.pending = Some(Pending {
+        *self.slot_state(slot).1 = Some(Pending {
             key,
             job,
             input: None,
@@ -423,17 +589,20 @@ impl Workbench {
         });
     }
 
-    /// Stop the running forward pass, if any, without a message.
+    /// Stop the running forward passes, if any, without a message.
     fn cancel_run(&mut self) {
-        if let Some(p) = self.pending.take() {
+        for p in [self.pending.take(), self.pending_base.take()]
+            .into_iter()
+            .flatten()
+        {
             p.job.cancel();
         }
     }
 
-    /// Stop the running forward pass at the user's request: nothing is shown for this input
+    /// Stop the running forward passes at the user's request: nothing is shown for this input
     /// until it is run again.
     pub fn cancel_pending(&mut self) {
-        if self.pending.is_some() {
+        if self.is_busy() {
             self.cancel_run();
             let what = self
                 .image
@@ -448,29 +617,37 @@ impl Workbench {
     }
 
     pub fn is_busy(&self) -> bool {
-        self.pending.is_some()
+        self.pending.is_some() || self.pending_base.is_some()
     }
 
     /// Whether anything is still working: a load, a run, the pictures or a save.
     pub fn is_working(&self) -> bool {
-        self.pending.is_some()
+        self.is_busy()
             || self.loader.is_busy()
             || self.pictures.is_busy()
             || self.pictures.has_upload()
             || self.exporting.is_some()
     }
 
-    pub fn progress(&self) -> Option<Progress> {
-        self.pending.as_ref().and_then(|p| p.progress)
+    /// The progress of the checkpoint's run, or of the base's.
+    pub fn progress_of(&self, base: bool) -> Option<Progress> {
+        let p = if base {
+            &self.pending_base
+        } else {
+            &self.pending
+        };
+        p.as_ref().and_then(|p| p.progress)
     }
 
-    /// Take in everything the threads finished; call once per frame.
-    pub fn poll(&mut self) {
-        while let Some(l) = self.loader.poll() {
-            self.take_loaded(l);
-        }
+    /// Which runs are going: (checkpoint, base).
+    pub fn running(&self) -> (bool, bool) {
+        (self.pending.is_some(), self.pending_base.is_some())
+    }
+
+    /// Take in what one slot's forward pass sent.
+    fn poll_slot(&mut self, slot: Slot) {
         let mut finished = None;
-        if let Some(p) = &mut self.pending {
+        if let Some(p) = self.slot_state(slot).1 {
             while let Some(ev) = p.job.poll() {
                 match ev {
                     Event::Prepared(input) => p.input = Some(input),
@@ -482,32 +659,44 @@ impl Workbench {
                 }
             }
         }
-        if let Some(result) = finished {
-            let p = self.pending.take().expect("pending");
-            match (result, p.input) {
-                (Ok(outputs), Some(input)) => {
-                    self.cache
-                        .insert(p.key.clone(), (input.clone(), outputs.clone()));
-                    self.cache_order.retain(|k| k != &p.key);
-                    self.cache_order.push(p.key.clone());
-                    while self.cache_order.len() > CACHE_SIZE {
-                        let old = self.cache_order.remove(0);
-                        self.cache.remove(&old);
-                    }
-                    self.shown = Some(Shown {
-                        key: p.key,
-                        input,
-                        outputs,
-                    });
+        let Some(result) = finished else { return };
+        let p = self.slot_state(slot).1.take().expect("pending");
+        match (result, p.input) {
+            (Ok(outputs), Some(input)) => {
+                self.cache
+                    .insert(p.key.clone(), (input.clone(), outputs.clone()));
+                self.cache_order.retain(|k| k != &p.key);
+                self.cache_order.push(p.key.clone());
+                while self.cache_order.len() > CACHE_SIZE {
+                    let old = self.cache_order.remove(0);
+                    self.cache.remove(&old);
                 }
-                (Ok(_), None) => self.error("internal: a result came without its input"),
-                (Err(Error::Cancelled), _) => {}
-                (Err(e), _) => {
-                    self.run_problem = Some(e.to_string());
-                    self.error(e);
-                }
+                *self.slot_state(slot).0 = Some(Shown {
+                    key: p.key,
+                    input,
+                    outputs,
+                });
+            }
+            (Ok(_), None) => self.error("internal: a result came without its input"),
+            (Err(Error::Cancelled), _) => {}
+            (Err(e), _) => {
+                let msg = match slot {
+                    Slot::Main => e.to_string(),
+                    Slot::Base => format!("base (A): {e}"),
+                };
+                self.run_problem = Some(msg.clone());
+                self.error(msg);
             }
         }
+    }
+
+    /// Take in everything the threads finished; call once per frame.
+    pub fn poll(&mut self) {
+        while let Some(l) = self.loader.poll() {
+            self.take_loaded(l);
+        }
+        self.poll_slot(Slot::Main);
+        self.poll_slot(Slot::Base);
         if let Some(msg) = self.pictures.poll() {
             self.error(msg);
         }
@@ -517,6 +706,9 @@ impl Workbench {
                 match r {
                     Ok(done) => {
                         self.info(format!("saved {}", done.png.display()));
+                        if let Some(c) = &done.comparison {
+                            self.info(format!("saved {}", c.display()));
+                        }
                         self.last_export = Some(done);
                     }
                     Err(e) => self.error(format!("figure not saved: {e}")),
@@ -526,26 +718,34 @@ impl Workbench {
     }
 
     /// Start whatever the current result and settings need (pictures) and bring the region
-    /// numbers up to date; call once per frame after the actions.
+    /// numbers up to date; call once per frame after the actions. While the base's pass of
+    /// the image is still running, nothing is drawn: the view shows both or waits.
     pub fn refresh(&mut self) {
         self.regions.outlines = self.settings.show_regions;
-        match &self.shown {
-            Some(shown) => {
+        let waiting_for_base = self.base.is_some() && self.pending_base.is_some();
+        match (&self.shown, waiting_for_base) {
+            (Some(shown), false) => {
                 let size = self
                     .image
                     .as_ref()
                     .map_or(shown.input.dimensions(), |i| i.pixels.dimensions());
                 let wake = self.wake();
+                let base = self
+                    .base
+                    .as_ref()
+                    .and(self.shown_base.as_ref())
+                    .map(|b| (b.key.as_str(), &b.outputs));
                 self.pictures.want(
                     &shown.key,
                     &shown.outputs,
+                    base,
                     &shown.input,
                     size,
                     &self.settings,
                     wake,
                 );
             }
-            None => {
+            _ => {
                 if self.pictures.maps.is_some() || self.pictures.textures.is_some() {
                     self.pictures.clear();
                 }
@@ -567,7 +767,7 @@ impl Workbench {
             self.poll();
             self.refresh();
             // Pictures waiting for upload need a frame, not more waiting.
-            let busy = self.pending.is_some()
+            let busy = self.is_busy()
                 || self.loader.is_busy()
                 || self.pictures.is_busy()
                 || self.exporting.is_some();
@@ -618,6 +818,7 @@ impl Workbench {
                 .weights
                 .as_ref()
                 .map_or_else(String::new, |w| w.name.clone()),
+            base: self.base.as_ref().map(|w| w.name.clone()),
             paths,
             rows: self.regions.stats.clone(),
         };
@@ -677,13 +878,30 @@ impl Workbench {
                     self.error(format!("{}: no such file or folder", p.display()));
                 }
             }
+            Action::OpenBase(p) => self.open_base(&p),
+            Action::OpenTypedBase(s) => {
+                let p = PathBuf::from(s.trim());
+                if s.trim().is_empty() {
+                    self.error("type the path of the base checkpoint (A) first");
+                } else if p.is_file() {
+                    self.open_base(&p);
+                } else {
+                    self.error(format!("{}: no such checkpoint file", p.display()));
+                }
+            }
+            Action::CloseBase => self.close_base(),
+            Action::ShowDrift(on) => self.show_drift = on,
             Action::Pick(what) => {
                 let wake = self.wake();
                 self.loader.pick(what, wake);
             }
             Action::NextImage => self.next_image(),
             Action::PreviousImage => self.previous_image(),
-            Action::SetSettings(next) => {
+            Action::SetSettings(mut next) => {
+                if next.map_kind == "difference" && self.base.is_none() {
+                    self.error("the difference map needs a base checkpoint (A): open one first");
+                    next.map_kind = self.settings.map_kind.clone();
+                }
                 let rerun = self.settings.needs_new_run(&next);
                 self.settings = *next;
                 self.settings.focus_stage = self

@@ -5,6 +5,7 @@
 use super::actions::Action;
 use super::canvas::CanvasTools;
 use super::panels::controls::Controls;
+use super::panels::drift::DriftPanel;
 use super::panels::help::Help;
 use super::panels::keys::shortcuts;
 use super::panels::lens::Lens;
@@ -14,7 +15,7 @@ use super::panels::pointer::Pointer;
 use super::panels::readout::Readout;
 use super::panels::region_panel::RegionPanel;
 use super::panels::region_table::RegionTable;
-use super::panels::sources::SourceBar;
+use super::panels::sources::{route_drop, SourceBar};
 use super::panels::strip::StageStrip;
 use super::settings::Settings;
 use super::state::Workbench;
@@ -35,6 +36,7 @@ pub struct Panels {
     pub pointer: Pointer,
     pub help: Help,
     pub report: LoadReportWindow,
+    pub drift: DriftPanel,
 }
 
 /// The whole window: the state and the panels.
@@ -79,17 +81,22 @@ impl Window {
         bench.poll();
         bench.pictures.upload(&ctx);
         let mut actions: Vec<Action> = Vec::new();
-        let dropped: Vec<PathBuf> = ctx.input(|i| {
-            i.raw
-                .dropped_files
-                .iter()
-                .map(|f| f.path().to_path_buf())
-                .filter(|p| !p.as_os_str().is_empty())
-                .collect()
+        let (dropped, at): (Vec<PathBuf>, Option<egui::Pos2>) = ctx.input(|i| {
+            (
+                i.raw
+                    .dropped_files
+                    .iter()
+                    .map(|f| f.path().to_path_buf())
+                    .filter(|p| !p.as_os_str().is_empty())
+                    .collect(),
+                i.pointer.latest_pos(),
+            )
         });
-        if !dropped.is_empty() {
-            actions.push(Action::OpenPaths(dropped));
-        }
+        // Files dropped on the base slot (as it was drawn last frame) become the base (A).
+        let over_base = at
+            .zip(p.sources.base_zone)
+            .is_some_and(|(pos, zone)| zone.expand(6.0).contains(pos));
+        actions.extend(route_drop(dropped, over_base));
         let b: &Workbench = bench;
         actions.extend(shortcuts(ui, b, &mut p.canvas, &mut p.lens));
         actions.extend(p.sources.ui(ui, b));
@@ -126,6 +133,9 @@ impl Window {
         }
         if b.show_report {
             actions.extend(p.report.ui(ui, b));
+        }
+        if b.show_drift {
+            actions.extend(p.drift.ui(ui, b));
         }
         p.pointer.end_frame();
         for a in actions {

@@ -12,6 +12,10 @@ pub struct OpenArgs {
     /// weights, said so on screen].
     #[arg(long, value_name = "FILE")]
     pub weights: Option<PathBuf>,
+    /// A checkpoint to compare with (A: the base the checkpoint was fine-tuned from, or the
+    /// previous release); the window then shows A, B and their difference per stage.
+    #[arg(long, value_name = "FILE")]
+    pub base: Option<PathBuf>,
     /// Size of the window in points, WIDTHxHEIGHT.
     #[arg(long, value_parser = parse_window_size, value_name = "WxH")]
     pub window_size: Option<(f32, f32)>,
@@ -33,16 +37,28 @@ fn parse_window_size(s: &str) -> std::result::Result<(f32, f32), String> {
 /// No arguments: open the window on the bundled demo (sample images, and the demo checkpoint
 /// when one is bundled; otherwise random weights, said so on screen).
 pub fn demo() -> Result<()> {
-    let (images, weights) = crate::app::demo_inputs();
-    crate::app::run(images, weights, None)
+    crate::app::run(crate::app::demo_inputs(), None)
 }
 
 pub fn open(args: &OpenArgs) -> Result<()> {
-    let (images, weights) = if args.images.is_empty() {
-        let (images, demo_weights) = crate::app::demo_inputs();
-        (images, args.weights.clone().or(demo_weights))
+    let opening = if args.images.is_empty() {
+        let demo = crate::app::demo_inputs();
+        // The demo pair comes along only with the demo checkpoint.
+        let base = match &args.weights {
+            Some(_) => args.base.clone(),
+            None => args.base.clone().or(demo.base),
+        };
+        crate::app::Opening {
+            images: demo.images,
+            weights: args.weights.clone().or(demo.weights),
+            base,
+        }
     } else {
-        (args.images.clone(), args.weights.clone())
+        crate::app::Opening {
+            images: args.images.clone(),
+            weights: args.weights.clone(),
+            base: args.base.clone(),
+        }
     };
-    crate::app::run(images, weights, args.window_size)
+    crate::app::run(opening, args.window_size)
 }

@@ -19,15 +19,14 @@
 
 use super::report::{FailedImage, Shard, ShardInfo};
 use crate::analysis::compare::{
-    linear_cka, token_cosines, weight_drift, CkaSums, CosineSums, Drift, DRIFT_COLUMNS,
+    linear_cka, prepare_pair_view, token_cosines, weight_drift, CkaSums, CosineSums, Drift,
+    DRIFT_COLUMNS,
 };
-use crate::analysis::{
-    prepare_stage_pair, stage_tokens, Colormap, ScaleSpec, TokenDifference, TokenNorm, CAUTION,
-};
+use crate::analysis::{stage_tokens, Colormap, ScaleSpec, TokenNorm, CAUTION};
 use crate::engine::{Checkpoint, Session, SessionOptions, StageOutputs};
 use crate::error::{Error, Result};
 use crate::io::{file_name, write_text_atomic, ContentHashes};
-use crate::render::{self, FigureSpec, Overlays};
+use crate::render::{self, Overlays};
 use candle_core::Tensor;
 use indicatif::{ProgressBar, ProgressStyle};
 use serde::{Deserialize, Serialize};
@@ -531,7 +530,7 @@ impl Context<'_> {
         let target = if in_pool { &mut scratch } else { &mut *pool };
         let rows = image_rows(&name, &oa, &ob, Some(target))?;
         if let Some(p) = &figure_path {
-            self.figure(image, &oa, &ob, &rows, p)?;
+            self.figure(image, &oa, &ob, p)?;
         }
         let record = Record {
             inputs,
@@ -548,83 +547,23 @@ impl Context<'_> {
         image_path: &Path,
         oa: &StageOutputs,
         ob: &StageOutputs,
-        rows: &[StageRow],
         path: &Path,
     ) -> Result<()> {
         let image = crate::engine::input::load_image(image_path)?;
         let scale = render::default_figure_scale(image.height());
         let colormap = Colormap::Viridis;
         let spec = ScaleSpec::default();
-        let style = render::figure_panel_style(colormap, 0.6, Overlays::default(), scale);
-        let cka: Vec<String> = rows
-            .iter()
-            .map(|r| {
-                format!(
-                    "stage {} {}",
-                    r.stage,
-                    r.linear_cka.map_or("none".into(), |c| format!("{c:.4}"))
-                )
-            })
-            .collect();
-        let mut figures = Vec::new();
-        let mut one = |which: &str,
-                       session: &Session,
-                       out: &StageOutputs,
-                       other: Option<&StageOutputs>,
-                       kind: &dyn crate::analysis::MapKind,
-                       note: Option<String>|
-         -> Result<()> {
-            let (_, stages) = prepare_stage_pair(out, other, kind, &spec)?;
-            let mut notes = vec![render::scale_note(&spec, colormap)];
-            notes.extend(note);
-            figures.push(render::compose_figure(&FigureSpec {
-                image: &image,
-                geometry: &out.geometry,
-                stages: &stages,
-                style,
-                checkpoint: match other {
-                    Some(_) => format!(
-                        "{which}: {} vs {}",
-                        session.checkpoint_name(),
-                        self.b.checkpoint_name()
-                    ),
-                    None => format!("{which}: {}", session.checkpoint_name()),
-                },
-                map_label: kind.label(),
-                notes,
-                text_px: render::figure_text_px(scale),
-            })?);
-            Ok(())
-        };
-        one("A (base)", &self.a, oa, None, &TokenNorm, None)?;
-        one("B (tuned)", &self.b, ob, None, &TokenNorm, None)?;
-        let widths_equal = oa
-            .stages
-            .iter()
-            .zip(&ob.stages)
-            .all(|(x, y)| x.dims().last() == y.dims().last());
-        let pair = format!("linear CKA of A and B: {}", cka.join(", "));
-        if widths_equal {
-            one(
-                "A vs B",
-                &self.a,
-                oa,
-                Some(ob),
-                &TokenDifference,
-                Some(pair),
-            )?;
-        } else {
-            figures.push(render::text_figure(
-                &[
-                    pair,
-                    "no difference map: the stage widths of A and B differ, so tokens have no \
-                     per-token cosine (CKA above still compares them)"
-                        .into(),
-                ],
-                render::figure_text_px(scale),
-            )?);
-        }
-        crate::io::save_png_atomic(&render::stack_figures(&figures)?, path)
+        let pair = prepare_pair_view(oa, ob, &TokenNorm, &spec)?;
+        let fig = render::compose_pair_figure(&render::PairFigureSpec {
+            image: &image,
+            geometry: &oa.geometry,
+            pair: &pair,
+            style: render::figure_panel_style(colormap, 0.6, Overlays::default(), scale),
+            names: (self.a.checkpoint_name(), self.b.checkpoint_name()),
+            notes: vec![render::scale_note(&spec, colormap)],
+            text_px: render::figure_text_px(scale),
+        })?;
+        crate::io::save_png_atomic(&fig, path)
     }
 }
 

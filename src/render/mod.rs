@@ -6,6 +6,7 @@
 
 pub mod figure;
 pub mod legend;
+pub mod pair;
 pub mod panel;
 pub mod text;
 
@@ -14,6 +15,7 @@ pub use figure::{
     outline_regions, scale_note, stack_figures, text_figure, FigureSpec, PCA_NOTE,
 };
 pub use legend::{format_tick, linear_ticks, log_ticks, render_legend, render_rgb_legend};
+pub use pair::{compose_pair_figure, pair_summary_lines, PairFigureSpec};
 pub use panel::{
     blend, border_px, canvas_size, is_hatch, line_width_for_scale, render_map_only, render_panel,
     to_px, window_borders, Border, GridKind, Overlays, PanelStyle, BACKGROUND, HATCH_PERIOD, INK,

@@ -7,6 +7,7 @@ mod architecture;
 mod bad_input;
 mod commands;
 mod compare;
+mod compare_window;
 mod demo;
 mod hardening;
 mod real_window;

@@ -160,9 +160,155 @@ pub fn weight_drift(base: &Checkpoint, tuned: &Checkpoint) -> Result<Drift> {
     Ok(drift)
 }
 
+/// The weight groups the drift chart draws: a block's parts, and the patch merging that
+/// starts a stage.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum DriftGroup {
+    Qkv,
+    Proj,
+    Fc1,
+    Fc2,
+    /// `norm1` and `norm2` of a block.
+    Norms,
+    /// The relative-position bias table.
+    BiasTable,
+    /// Patch merging (its norm and reduction) at the start of a stage.
+    Merging,
+}
+
+impl DriftGroup {
+    pub const ALL: [DriftGroup; 7] = [
+        DriftGroup::Qkv,
+        DriftGroup::Proj,
+        DriftGroup::Fc1,
+        DriftGroup::Fc2,
+        DriftGroup::Norms,
+        DriftGroup::BiasTable,
+        DriftGroup::Merging,
+    ];
+
+    pub fn name(self) -> &'static str {
+        match self {
+            DriftGroup::Qkv => "qkv",
+            DriftGroup::Proj => "proj",
+            DriftGroup::Fc1 => "fc1",
+            DriftGroup::Fc2 => "fc2",
+            DriftGroup::Norms => "norms",
+            DriftGroup::BiasTable => "bias table",
+            DriftGroup::Merging => "patch merging",
+        }
+    }
+
+    /// The group of a canonical tensor name, with its stage and block (block `None` for
+    /// patch merging); `None` for tensors outside blocks and merging (embedding, norms).
+    pub fn of(tensor: &str) -> Option<(DriftGroup, usize, Option<usize>)> {
+        let rest = tensor.strip_prefix("layers.")?;
+        let (stage, rest) = rest.split_once('.')?;
+        let stage: usize = stage.parse().ok()?;
+        if rest.starts_with("downsample.") {
+            return Some((DriftGroup::Merging, stage, None));
+        }
+        let rest = rest.strip_prefix("blocks.")?;
+        let (block, part) = rest.split_once('.')?;
+        let block: usize = block.parse().ok()?;
+        let group = match part {
+            p if p.starts_with("attn.qkv.") => DriftGroup::Qkv,
+            p if p.starts_with("attn.proj.") => DriftGroup::Proj,
+            p if p.starts_with("attn.relative_position_bias_table") => DriftGroup::BiasTable,
+            p if p.starts_with("mlp.fc1.") => DriftGroup::Fc1,
+            p if p.starts_with("mlp.fc2.") => DriftGroup::Fc2,
+            p if p.starts_with("norm1.") || p.starts_with("norm2.") => DriftGroup::Norms,
+            _ => return None,
+        };
+        Some((group, stage, Some(block)))
+    }
+}
+
+/// How far one weight group of one block (or one stage's patch merging) moved:
+/// `||B - A||_F / ||A||_F` over the group's tensors taken together.
+#[derive(Clone, Debug, PartialEq)]
+pub struct GroupDrift {
+    pub group: DriftGroup,
+    pub stage: usize,
+    pub block: Option<usize>,
+    pub relative_change: Option<f64>,
+    pub base_norm: f64,
+}
+
+/// Join the per-tensor rows into groups: for tensors t of a group,
+/// `sqrt(sum ||B_t - A_t||^2) / sqrt(sum ||A_t||^2)` (the drift of the tensors concatenated),
+/// ordered by stage, then block (merging first in its stage), then group.
+pub fn group_drift(drift: &Drift) -> Vec<GroupDrift> {
+    use std::collections::BTreeMap;
+    // key: (stage, block + 1 with 0 for merging, group) -> (sum d^2, sum a^2, any undefined)
+    let mut sums: BTreeMap<(usize, usize, DriftGroup), (f64, f64)> = BTreeMap::new();
+    for r in &drift.rows {
+        let Some((group, stage, block)) = DriftGroup::of(&r.tensor) else {
+            continue;
+        };
+        let e = sums
+            .entry((stage, block.map_or(0, |b| b + 1), group))
+            .or_default();
+        let d = r.relative_change.unwrap_or(0.0) * r.base_norm;
+        e.0 += d * d;
+        e.1 += r.base_norm * r.base_norm;
+    }
+    sums.into_iter()
+        .map(|((stage, b, group), (d2, a2))| GroupDrift {
+            group,
+            stage,
+            block: b.checked_sub(1),
+            relative_change: (a2 > 0.0).then(|| (d2 / a2).sqrt()),
+            base_norm: a2.sqrt(),
+        })
+        .collect()
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn row(tensor: &str, rc: f64, n: f64) -> DriftRow {
+        DriftRow {
+            tensor: tensor.into(),
+            stage: None,
+            block: None,
+            relative_change: Some(rc),
+            base_norm: n,
+        }
+    }
+
+    #[test]
+    fn groups_join_tensors_as_one_concatenated_tensor() {
+        // weight: ||A|| = 3, ||B - A|| = 0.3; bias: ||A|| = 4, ||B - A|| = 0.4: together
+        // ||A|| = 5 and ||B - A|| = 0.5, so 0.1 (by hand).
+        let d = Drift {
+            rows: vec![
+                row("patch_embed.proj.weight", 0.5, 1.0),
+                row("layers.1.downsample.reduction.weight", 0.2, 2.0),
+                row("layers.1.blocks.0.attn.qkv.weight", 0.1, 3.0),
+                row("layers.1.blocks.0.attn.qkv.bias", 0.1, 4.0),
+                row("layers.1.blocks.0.norm2.weight", 0.0, 1.0),
+                row(
+                    "layers.0.blocks.1.attn.relative_position_bias_table",
+                    0.25,
+                    2.0,
+                ),
+            ],
+            ..Default::default()
+        };
+        let g = group_drift(&d);
+        assert_eq!(g.len(), 4, "{g:?}");
+        assert_eq!(
+            (g[0].group, g[0].stage, g[0].block),
+            (DriftGroup::BiasTable, 0, Some(1))
+        );
+        assert_eq!((g[1].group, g[1].block), (DriftGroup::Merging, None));
+        assert_eq!(g[2].group, DriftGroup::Qkv);
+        assert!((g[2].relative_change.unwrap() - 0.1).abs() < 1e-12);
+        assert!((g[2].base_norm - 5.0).abs() < 1e-12);
+        assert_eq!(g[3].group, DriftGroup::Norms);
+    }
 
     #[test]
     fn relative_change_by_hand() {

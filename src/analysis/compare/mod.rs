@@ -7,8 +7,12 @@ pub mod cosine;
 pub mod difference;
 pub mod drift;
 mod exact;
+pub mod pair;
 
 pub use cka::{linear_cka, CkaSums};
 pub use cosine::{token_cosines, CosineStats, CosineSums};
 pub use difference::TokenDifference;
-pub use drift::{weight_drift, Drift, DriftRow, DRIFT_COLUMNS};
+pub use drift::{
+    group_drift, weight_drift, Drift, DriftGroup, DriftRow, GroupDrift, DRIFT_COLUMNS,
+};
+pub use pair::{pair_problem, prepare_pair_view, DifferenceStage, PairView};

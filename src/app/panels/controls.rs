@@ -9,6 +9,9 @@ use crate::app::state::Workbench;
 use crate::engine::geometry::{PadOrder, SmallStage};
 use crate::engine::input::{InputPolicy, Normalisation};
 
+/// The difference map kind as the menu names it.
+pub const DIFFERENCE_LABEL: &str = "1 - cosine, A vs B";
+
 #[derive(Default)]
 pub struct Controls;
 
@@ -109,13 +112,24 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
         .selected_text(match s.map_kind.as_str() {
             "channel" => "one channel",
             "pca" => "PCA to RGB",
+            "difference" => DIFFERENCE_LABEL,
             _ => "token L2 norm",
         })
         .show_ui(ui, |ui| {
             ui.selectable_value(&mut s.map_kind, "norm".to_string(), "token L2 norm");
             ui.selectable_value(&mut s.map_kind, "channel".to_string(), "one channel");
             ui.selectable_value(&mut s.map_kind, "pca".to_string(), "PCA to RGB");
+            if bench.base.is_some() {
+                ui.selectable_value(&mut s.map_kind, "difference".to_string(), DIFFERENCE_LABEL);
+            }
         });
+    if bench.base.is_some() {
+        ui.small(if s.map_kind == "difference" {
+            "the lens, regions and Save figure use the difference; the A and B rows show token norms"
+        } else {
+            "the strip shows A, B and 1 - cosine per stage; the lens and regions use B"
+        });
+    }
     if s.map_kind == "channel" {
         ui.horizontal(|ui| {
             labelled_drag(

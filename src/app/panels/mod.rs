@@ -3,6 +3,7 @@
 //! the [`Action`](super::actions::Action)s the window applies after the frame.
 
 pub mod controls;
+pub mod drift;
 pub mod help;
 pub mod keys;
 pub mod lens;

@@ -1,5 +1,6 @@
 //! The read-out of what the pointer is over, in a fixed place below the pictures: the pixel,
-//! then for every stage the token, its pixel footprint, the map value and the window.
+//! then for every stage the token, its pixel footprint, the map value and the window; when two
+//! checkpoints are compared, A's and B's values and the token's cosine.
 
 use super::pointer::Pointer;
 use crate::app::actions::Action;
@@ -38,6 +39,11 @@ pub fn hover_lines(maps: &PreparedMaps, block: usize, p: (f32, f32)) -> Vec<Stri
                 .0
         });
         let fp = st.footprint(row, col, g.image);
+        // When comparing, A's and B's values and the cosine of this token come along.
+        let value = match maps.pair_at(st.index, row, col) {
+            Some(pair) if row < st.grid.0 && col < st.grid.1 => format!("{value}; {pair}"),
+            _ => value,
+        };
         lines.push(format!(
             "stage {}: token (row {row}, col {col}), pixels x {}..{} y {}..{}, {value}, window {}",
             st.index,

@@ -13,6 +13,27 @@ pub struct SourceBar {
     pub typed_path: String,
     /// The last focus request of the state this bar has honoured.
     focus_seen: u64,
+    /// Where the base slot is on screen: checkpoints dropped there become the base (A).
+    pub base_zone: Option<egui::Rect>,
+}
+
+/// What dropping `paths` asks for: over the base slot, a checkpoint becomes the base (A);
+/// anywhere else they open as usual (images, folders, the checkpoint).
+pub fn route_drop(paths: Vec<PathBuf>, over_base: bool) -> Vec<Action> {
+    if paths.is_empty() {
+        return Vec::new();
+    }
+    if !over_base {
+        return vec![Action::OpenPaths(paths)];
+    }
+    let (weights, rest): (Vec<_>, Vec<_>) = paths
+        .into_iter()
+        .partition(|p| crate::io::is_weights_path(p));
+    let mut out: Vec<Action> = weights.into_iter().take(1).map(Action::OpenBase).collect();
+    if !rest.is_empty() {
+        out.push(Action::OpenPaths(rest));
+    }
+    out
 }
 
 impl SourceBar {
@@ -37,15 +58,16 @@ impl SourceBar {
                     ui.label(format!("{name}  ({}/{n})", bench.current + 1));
                 }
                 ui.separator();
+                let b_tag = if bench.base.is_some() { " (B)" } else { "" };
                 match &bench.weights {
                     Some(w) if w.random => {
                         ui.colored_label(
                             Color32::from_rgb(220, 80, 40),
-                            "RANDOM WEIGHTS: no learned structure",
+                            format!("RANDOM WEIGHTS{b_tag}: no learned structure"),
                         );
                     }
                     Some(w) => {
-                        ui.label(format!("checkpoint: {}", w.name));
+                        ui.label(format!("checkpoint{b_tag}: {}", w.name));
                     }
                     None => {
                         ui.label("no checkpoint");
@@ -58,6 +80,8 @@ impl SourceBar {
                 {
                     out.push(Action::ShowLoadReport(true));
                 }
+                ui.separator();
+                self.base_slot(ui, bench, &mut out);
                 ui.separator();
                 let can_save = bench.pictures.textures.is_some();
                 if ui
@@ -73,6 +97,35 @@ impl SourceBar {
             status_line(ui, bench, &mut out);
         });
         out
+    }
+
+    /// The second checkpoint: what it is, open and close it, and its weight drift. Dropping a
+    /// checkpoint on it makes that the base.
+    fn base_slot(&mut self, ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
+        let zone = ui.scope(|ui| match &bench.base {
+            Some(b) => {
+                ui.label(format!("base (A): {}", b.name));
+            }
+            None => {
+                ui.label("base (A): none — drop a checkpoint here to compare");
+            }
+        });
+        self.base_zone = Some(zone.response.rect);
+        if ui.button("Open base (A)…").clicked() {
+            out.push(Action::Pick(Pick::Base));
+        }
+        if bench.base.is_some() {
+            if ui.button("Close base").clicked() {
+                out.push(Action::CloseBase);
+            }
+            let drift_ready = bench.drift.is_some() || bench.loader.computing_drift.is_some();
+            if ui
+                .add_enabled(drift_ready, egui::Button::new("Weight drift"))
+                .clicked()
+            {
+                out.push(Action::ShowDrift(true));
+            }
+        }
     }
 
     fn open_buttons(&mut self, ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
@@ -96,10 +149,16 @@ impl SourceBar {
                     ui.small("none yet");
                 }
                 for p in list.iter() {
-                    if ui.button(p.display().to_string()).clicked() {
-                        out.push(Action::OpenPaths(vec![PathBuf::from(p)]));
-                        ui.close();
-                    }
+                    ui.horizontal(|ui| {
+                        if ui.button(p.display().to_string()).clicked() {
+                            out.push(Action::OpenPaths(vec![PathBuf::from(p)]));
+                            ui.close();
+                        }
+                        if what == "checkpoints" && ui.small_button("as base (A)").clicked() {
+                            out.push(Action::OpenBase(PathBuf::from(p)));
+                            ui.close();
+                        }
+                    });
                 }
             }
         });
@@ -120,16 +179,26 @@ impl SourceBar {
         if ui.button("Open path").clicked() || enter {
             out.push(Action::OpenTyped(self.typed_path.clone()));
         }
+        if ui.button("Open path as base (A)").clicked() {
+            out.push(Action::OpenTypedBase(self.typed_path.clone()));
+        }
     }
 }
 
 /// What is loading or running, with a cancel button, or why nothing is shown.
 fn status_line(ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
-    let loading: Vec<String> = [&bench.loader.loading_weights, &bench.loader.loading_image]
-        .into_iter()
-        .flatten()
-        .map(|p| format!("loading {}…", crate::io::file_name(p)))
-        .collect();
+    let mut loading: Vec<String> = [
+        &bench.loader.loading_weights,
+        &bench.loader.loading_base,
+        &bench.loader.loading_image,
+    ]
+    .into_iter()
+    .flatten()
+    .map(|p| format!("loading {}…", crate::io::file_name(p)))
+    .collect();
+    if bench.loader.computing_drift.is_some() {
+        loading.push("comparing the weights of A and B…".into());
+    }
     if !loading.is_empty() {
         ui.horizontal(|ui| {
             ui.spinner();
@@ -137,15 +206,27 @@ fn status_line(ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
         });
     }
     if bench.is_busy() {
+        let (main, base) = bench.running();
+        let comparing = bench.base.is_some();
         ui.horizontal(|ui| {
-            let (frac, text) = match bench.progress() {
-                Some(p) => (
-                    p.done as f32 / p.total.max(1) as f32,
-                    format!("stage {} — block {}/{}", p.stage, p.done, p.total),
-                ),
-                None => (0.0, "preparing the input…".into()),
-            };
-            ui.add(egui::ProgressBar::new(frac).text(text).desired_width(360.0));
+            for (running, is_base) in [(main, false), (base, true)] {
+                if !running {
+                    continue;
+                }
+                let which = match (comparing, is_base) {
+                    (true, false) => "B: ",
+                    (_, true) => "base (A): ",
+                    _ => "",
+                };
+                let (frac, text) = match bench.progress_of(is_base) {
+                    Some(p) => (
+                        p.done as f32 / p.total.max(1) as f32,
+                        format!("{which}stage {} — block {}/{}", p.stage, p.done, p.total),
+                    ),
+                    None => (0.0, format!("{which}preparing the input…")),
+                };
+                ui.add(egui::ProgressBar::new(frac).text(text).desired_width(300.0));
+            }
             if ui.button("Cancel").clicked() {
                 out.push(Action::CancelRun);
             }

@@ -2,10 +2,12 @@
 //! on narrow windows. Clicking a stage puts it in the lens; the region tools work here too.
 
 use super::pointer::{crosshair, to_input_px, Pointer};
+use crate::analysis::compare::{DifferenceStage, PairView};
 use crate::analysis::PreparedStage;
 use crate::app::actions::Action;
 use crate::app::canvas::{CanvasTools, Placement, Tool};
 use crate::app::overlay::paint_overlays;
+use crate::app::pictures::PairTextures;
 use crate::app::state::Workbench;
 use crate::render;
 use crate::render::Overlays;
@@ -119,7 +121,60 @@ fn legend_text(ui: &mut egui::Ui, st: Option<&PreparedStage>, label: &str, share
     }
 }
 
+/// Where a picture cell sits and what it shows.
+struct Cell<'a> {
+    texture: &'a egui::TextureHandle,
+    title: String,
+    /// The stage drawn (`None`: the image itself).
+    stage: Option<usize>,
+    canvas_px: (f32, f32),
+    size: Vec2,
+}
+
+/// What every cell shares in one frame.
+struct Frame<'a> {
+    bench: &'a Workbench,
+    maps: &'a crate::app::pictures::PreparedMaps,
+    overlays: Overlays,
+    to_image: (f64, f64),
+}
+
 impl StageStrip {
+    /// One picture: pointer, stage pick, region tools, grids and crosshair. Returns whether
+    /// the windows were too dense for a grid.
+    fn cell(
+        ui: &mut egui::Ui,
+        f: &Frame,
+        c: &Cell,
+        canvas: &mut CanvasTools,
+        pointer: &mut Pointer,
+        out: &mut Vec<Action>,
+    ) -> bool {
+        let g = &f.maps.outputs.geometry;
+        let resp = ui
+            .add(egui::Image::new((c.texture.id(), c.size)).sense(Sense::click_and_drag()))
+            .on_hover_text_at_pointer(c.title.clone());
+        if let Some(p) = resp.hover_pos() {
+            pointer.set(to_input_px(resp.rect, c.canvas_px, p));
+        }
+        if let (true, Some(s), Tool::Pick) = (resp.clicked(), c.stage, canvas.tool) {
+            out.push(Action::FocusStage(s));
+        }
+        let at = Placement {
+            rect: resp.rect,
+            canvas: c.canvas_px,
+            to_image: f.to_image,
+        };
+        out.extend(canvas.interact(&resp, &at, &f.bench.regions));
+        let painter = ui.painter_at(resp.rect);
+        let dense = c.stage.is_some_and(|s| {
+            !paint_overlays(&painter, &g.stages[s], g.image, &f.overlays, resp.rect).is_empty()
+        });
+        canvas.paint(&painter, &at, &f.bench.regions, None);
+        crosshair(&painter, resp.rect, resp.rect, c.canvas_px, pointer.hover);
+        dense
+    }
+
     pub fn ui(
         &mut self,
         ui: &mut egui::Ui,
@@ -137,10 +192,30 @@ impl StageStrip {
         let g = &maps.outputs.geometry;
         let overlays = bench.settings.overlays();
         let (sx, sy) = maps.image_to_input();
-        let to_image = (1.0 / sx, 1.0 / sy);
-        ui.label(egui::RichText::new(format!("Stage strip — {}", maps.map_label)).strong());
-        grid_key(ui, &overlays, bench);
+        let frame = Frame {
+            bench,
+            maps,
+            overlays,
+            to_image: (1.0 / sx, 1.0 / sy),
+        };
+        let pair = maps.pair.as_ref().zip(tex.pair.as_ref());
+        let heading = match pair {
+            Some((p, _)) => format!(
+                "Stage strip — A (base), B and 1 - cosine per stage; A and B rows: {}",
+                p.kind_label
+            ),
+            None => format!("Stage strip — {}", maps.map_label),
+        };
+        ui.label(egui::RichText::new(heading).strong());
+        if let Some(problem) = &maps.pair_problem {
+            ui.colored_label(
+                Color32::from_rgb(230, 90, 70),
+                format!("A and B not compared: {problem}"),
+            );
+        }
+        grid_key(ui, &frame.overlays, bench);
         let n = tex.strip.len() + 1;
+        let rows = if pair.is_some() { 3.0 } else { 1.0 };
         let avail = ui.available_width();
         // All pictures in one row while each keeps 110 points; otherwise as many as fit.
         let per_row = ((avail / 110.0).floor() as usize).clamp(1, n);
@@ -156,67 +231,52 @@ impl StageStrip {
             .map(|c| c.1 / c.0 * cell_w)
             .fold(0.0, f32::max)
             .min(240.0)
-            .min((self.max_height - 90.0).max(60.0));
+            .min(((self.max_height - 90.0 * rows) / rows).max(60.0));
+        let fit = |canvas_px: (f32, f32)| {
+            let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
+            Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale)
+        };
+        if let Some((view, ptex)) = pair {
+            self.pair_grid(
+                ui, &frame, view, ptex, &canvases, cell_w, &fit, canvas, pointer, &mut out,
+            );
+            return out;
+        }
         egui::Grid::new("strip").spacing([8.0, 4.0]).show(ui, |ui| {
             for (idx, &canvas_px) in canvases.iter().enumerate().take(n) {
-                let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
-                let size = Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale);
+                let size = fit(canvas_px);
                 ui.vertical(|ui| {
                     // Captions wrap inside the cell; the row never grows past the strip.
                     ui.set_max_width(cell_w);
-                    let mut dense = false;
-                    let title = if idx == 0 {
-                        "image".to_string()
-                    } else {
-                        format!("stage {}", idx - 1)
-                    };
+                    let stage = idx.checked_sub(1);
+                    let title = stage.map_or("image".to_string(), |s| format!("stage {s}"));
                     ui.small(title.clone());
-                    let texture = if idx == 0 {
-                        Some(&tex.image)
-                    } else {
-                        tex.strip.get(idx - 1)
+                    let texture = match stage {
+                        None => Some(&tex.image),
+                        Some(s) => tex.strip.get(s),
                     };
+                    let mut dense = false;
                     if let Some(t) = texture {
-                        let resp = ui
-                            .add(egui::Image::new((t.id(), size)).sense(Sense::click_and_drag()))
-                            .on_hover_text_at_pointer(title.clone());
-                        if let Some(p) = resp.hover_pos() {
-                            pointer.set(to_input_px(resp.rect, canvas_px, p));
-                        }
-                        if resp.clicked() && idx > 0 && canvas.tool == Tool::Pick {
-                            out.push(Action::FocusStage(idx - 1));
-                        }
-                        let at = Placement {
-                            rect: resp.rect,
-                            canvas: canvas_px,
-                            to_image,
+                        let c = Cell {
+                            texture: t,
+                            title,
+                            stage,
+                            canvas_px,
+                            size,
                         };
-                        out.extend(canvas.interact(&resp, &at, &bench.regions));
-                        let painter = ui.painter_at(resp.rect);
-                        if idx > 0 {
-                            dense = !paint_overlays(
-                                &painter,
-                                &g.stages[idx - 1],
-                                g.image,
-                                &overlays,
-                                resp.rect,
-                            )
-                            .is_empty();
-                        }
-                        canvas.paint(&painter, &at, &bench.regions, None);
-                        crosshair(&painter, resp.rect, resp.rect, canvas_px, pointer.hover);
+                        dense = Self::cell(ui, &frame, &c, canvas, pointer, &mut out);
                     }
                     if dense {
                         ui.small("windows too small here for a grid; see the lens");
                     }
-                    if idx > 0 {
-                        if let Some(t) = tex.legends.get(idx - 1) {
+                    if let Some(s) = stage {
+                        if let Some(t) = tex.legends.get(s) {
                             let w = size.x.min(240.0);
                             ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
                         }
                         legend_text(
                             ui,
-                            maps.stages.get(idx - 1),
+                            maps.stages.get(s),
                             &maps.map_label,
                             maps.key.spec.shared_across_stages,
                         );
@@ -228,5 +288,139 @@ impl StageStrip {
             }
         });
         out
+    }
+
+    /// The comparison: a row each for A, B and the difference; the image leads the A row,
+    /// the other rows start with their name. CKA stands beside each stage title.
+    #[allow(clippy::too_many_arguments)]
+    fn pair_grid(
+        &self,
+        ui: &mut egui::Ui,
+        frame: &Frame,
+        view: &PairView,
+        ptex: &PairTextures,
+        canvases: &[(f32, f32)],
+        cell_w: f32,
+        fit: &dyn Fn((f32, f32)) -> Vec2,
+        canvas: &mut CanvasTools,
+        pointer: &mut Pointer,
+        out: &mut Vec<Action>,
+    ) {
+        let bench = frame.bench;
+        let names = (
+            bench
+                .base
+                .as_ref()
+                .map_or(String::new(), |w| w.name.clone()),
+            bench
+                .weights
+                .as_ref()
+                .map_or(String::new(), |w| w.name.clone()),
+        );
+        let shared = frame.maps.key.spec.shared_across_stages;
+        egui::Grid::new("pair-strip")
+            .spacing([8.0, 4.0])
+            .show(ui, |ui| {
+                for row in 0..3 {
+                    ui.vertical(|ui| {
+                        ui.set_max_width(cell_w);
+                        match row {
+                            0 => {
+                                ui.small(format!("A (base): {}", names.0));
+                                if let Some(t) = frame.bench.pictures.textures.as_ref() {
+                                    let c = Cell {
+                                        texture: &t.image,
+                                        title: "image".into(),
+                                        stage: None,
+                                        canvas_px: canvases[0],
+                                        size: fit(canvases[0]),
+                                    };
+                                    Self::cell(ui, frame, &c, canvas, pointer, out);
+                                }
+                            }
+                            1 => {
+                                ui.small(format!("B: {}", names.1));
+                            }
+                            _ => {
+                                ui.small("A vs B: 1 - cosine per token");
+                                ui.small("0: same direction, 1: orthogonal, 2: opposite");
+                            }
+                        }
+                    });
+                    for (s, &canvas_px) in
+                        canvases.iter().enumerate().skip(1).map(|(i, c)| (i - 1, c))
+                    {
+                        ui.vertical(|ui| {
+                            ui.set_max_width(cell_w);
+                            let size = fit(canvas_px);
+                            let cka = view.cka.get(s).copied().flatten();
+                            let cka_text = cka.map_or("CKA none".into(), |c| format!("CKA {c:.3}"));
+                            let (title, texture) = match row {
+                                0 => (format!("A stage {s} · {cka_text}"), ptex.a.get(s)),
+                                1 => (format!("B stage {s} · {cka_text}"), ptex.b.get(s)),
+                                _ => (
+                                    format!("A vs B stage {s} · {cka_text}"),
+                                    ptex.difference.get(s).and_then(Option::as_ref),
+                                ),
+                            };
+                            ui.small(title.clone());
+                            match texture {
+                                Some(t) => {
+                                    let c = Cell {
+                                        texture: t,
+                                        title,
+                                        stage: Some(s),
+                                        canvas_px,
+                                        size,
+                                    };
+                                    if Self::cell(ui, frame, &c, canvas, pointer, out) {
+                                        ui.small("windows too small here for a grid");
+                                    }
+                                }
+                                None => {
+                                    if let Some(DifferenceStage::Absent(why)) =
+                                        view.difference.get(s)
+                                    {
+                                        ui.small(why.clone());
+                                    }
+                                }
+                            }
+                            let w = size.x.min(240.0);
+                            match row {
+                                1 => {
+                                    if let Some(t) = ptex.ab_legends.get(s) {
+                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
+                                    }
+                                    legend_text(
+                                        ui,
+                                        view.b.get(s),
+                                        &format!("A and B, {}", view.kind_label),
+                                        shared,
+                                    );
+                                }
+                                2 => {
+                                    if let Some(Some(t)) = ptex.difference_legends.get(s) {
+                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
+                                    }
+                                    if let Some(DifferenceStage::Shown {
+                                        prepared,
+                                        mean_cosine,
+                                        min_cosine,
+                                        ..
+                                    }) = view.difference.get(s)
+                                    {
+                                        legend_text(ui, Some(prepared), "1 - cosine", shared);
+                                        ui.small(format!(
+                                            "cosine mean {mean_cosine:.3}, min {min_cosine:.3}"
+                                        ));
+                                    }
+                                }
+                                _ => {}
+                            }
+                        });
+                    }
+                    ui.end_row();
+                }
+            });
     }
 }
