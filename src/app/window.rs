@@ -115,7 +115,9 @@ impl Window {
         egui::CentralPanel::default().show(ui, |ui| {
             // The strip takes at most a little under half the height (scrolling when it needs
             // more); the lens takes what is left.
-            let strip_h = (ui.available_height() * 0.45).clamp(120.0, 560.0);
+            // Comparing, the strip holds three rows (A, B, difference) and takes more.
+            let share = if b.comparing() { 0.58 } else { 0.45 };
+            let strip_h = (ui.available_height() * share).clamp(120.0, 620.0);
             p.strip.max_height = strip_h;
             egui::ScrollArea::vertical()
                 .id_salt("strip")

@@ -88,7 +88,7 @@ fn the_demo_pair_shows_a_b_and_the_difference_with_drift_and_saves() {
     let n_stages = 4;
     for s in 0..n_stages {
         for row in ["A stage", "B stage", "A vs B stage"] {
-            let title = format!("{row} {s} · CKA ");
+            let title = format!("{row} {s}");
             assert!(
                 h.query_all(By::new().label_contains(&title)).count() >= 1,
                 "no panel titled '{title}…'"

@@ -139,6 +139,20 @@ struct Frame<'a> {
     to_image: (f64, f64),
 }
 
+/// One line under a comparison panel: what the colours span and on which scale.
+fn compact_range(what: &str, st: Option<&PreparedStage>, shared: bool) -> String {
+    match st.and_then(|st| st.range.as_ref()) {
+        Some(r) => format!(
+            "{what}: {:.3} … {:.3}{}{}",
+            r.lo,
+            r.hi,
+            if r.log { " (log)" } else { "" },
+            if shared { ", all stages" } else { "" }
+        ),
+        None => format!("{what}: relative colours, PCA fitted on each side"),
+    }
+}
+
 impl StageStrip {
     /// One picture: pointer, stage pick, region tools, grids and crosshair. Returns whether
     /// the windows were too dense for a grid.
@@ -231,7 +245,7 @@ impl StageStrip {
             .map(|c| c.1 / c.0 * cell_w)
             .fold(0.0, f32::max)
             .min(240.0)
-            .min(((self.max_height - 90.0 * rows) / rows).max(60.0));
+            .min(((self.max_height - 60.0 * rows - 30.0) / rows).max(60.0));
         let fit = |canvas_px: (f32, f32)| {
             let scale = (cell_w / canvas_px.0).min(max_h / canvas_px.1);
             Vec2::new(canvas_px.0 * scale, canvas_px.1 * scale)
@@ -342,8 +356,9 @@ impl StageStrip {
                                 ui.small(format!("B: {}", names.1));
                             }
                             _ => {
-                                ui.small("A vs B: 1 - cosine per token");
-                                ui.small("0: same direction, 1: orthogonal, 2: opposite");
+                                ui.small("A vs B: 1 - cosine").on_hover_text(
+                                    "per token: 0 same direction, 1 orthogonal, 2 opposite",
+                                );
                             }
                         }
                     });
@@ -357,9 +372,9 @@ impl StageStrip {
                             let cka_text = cka.map_or("CKA none".into(), |c| format!("CKA {c:.3}"));
                             let (title, texture) = match row {
                                 0 => (format!("A stage {s} · {cka_text}"), ptex.a.get(s)),
-                                1 => (format!("B stage {s} · {cka_text}"), ptex.b.get(s)),
+                                1 => (format!("B stage {s}"), ptex.b.get(s)),
                                 _ => (
-                                    format!("A vs B stage {s} · {cka_text}"),
+                                    format!("A vs B stage {s}"),
                                     ptex.difference.get(s).and_then(Option::as_ref),
                                 ),
                             };
@@ -389,18 +404,13 @@ impl StageStrip {
                             match row {
                                 1 => {
                                     if let Some(t) = ptex.ab_legends.get(s) {
-                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
+                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 8.0))));
                                     }
-                                    legend_text(
-                                        ui,
-                                        view.b.get(s),
-                                        &format!("A and B, {}", view.kind_label),
-                                        shared,
-                                    );
+                                    ui.small(compact_range("A and B", view.b.get(s), shared));
                                 }
                                 2 => {
                                     if let Some(Some(t)) = ptex.difference_legends.get(s) {
-                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 6.0))));
+                                        ui.add(egui::Image::new((t.id(), Vec2::new(w, w / 8.0))));
                                     }
                                     if let Some(DifferenceStage::Shown {
                                         prepared,
@@ -409,7 +419,7 @@ impl StageStrip {
                                         ..
                                     }) = view.difference.get(s)
                                     {
-                                        legend_text(ui, Some(prepared), "1 - cosine", shared);
+                                        ui.small(compact_range("1 - cos", Some(prepared), shared));
                                         ui.small(format!(
                                             "cosine mean {mean_cosine:.3}, min {min_cosine:.3}"
                                         ));
