@@ -54,6 +54,9 @@ impl Column {
 pub struct DriftPanel {
     pub sort: Column,
     pub descending: bool,
+    /// A logarithmic vertical axis: bias tables and biases often move tens of times more than
+    /// the large matrices, which would otherwise sit flat on the floor.
+    pub log_y: bool,
 }
 
 impl Default for DriftPanel {
@@ -61,6 +64,7 @@ impl Default for DriftPanel {
         DriftPanel {
             sort: Column::Change,
             descending: true,
+            log_y: true,
         }
     }
 }
@@ -166,7 +170,8 @@ impl DriftPanel {
              together); 0 is untouched. How far weights moved says nothing of whether the \
              model is right.",
         );
-        chart(ui, groups);
+        ui.checkbox(&mut self.log_y, "log scale (chart)");
+        chart(ui, groups, self.log_y);
         ui.separator();
         self.table(ui, drift);
         unmatched(ui, drift);
@@ -237,7 +242,63 @@ fn unmatched(ui: &mut egui::Ui, drift: &Drift) {
 
 /// The chart: one line per weight group along the blocks, merging as diamonds where a stage
 /// starts, stage boundaries as vertical rules, a key, and the value under the pointer.
-fn chart(ui: &mut egui::Ui, groups: &[GroupDrift]) {
+/// The chart's vertical axis: where a value goes (0 at the floor, 1 at the top) and the ticks.
+pub struct Axis {
+    log: bool,
+    lo: f64,
+    hi: f64,
+}
+
+impl Axis {
+    /// Linear from 0 to a little above the largest value, or logarithmic over whole decades
+    /// from the smallest positive value to the largest.
+    pub fn new(values: &[f64], log: bool) -> Axis {
+        let max = values.iter().copied().fold(0.0f64, f64::max).max(1e-12);
+        let min_pos = values
+            .iter()
+            .copied()
+            .filter(|v| *v > 0.0)
+            .fold(f64::INFINITY, f64::min);
+        if log && min_pos.is_finite() {
+            let lo = min_pos.log10().floor();
+            let hi = max.log10().ceil().max(lo + 1.0);
+            Axis { log, lo, hi }
+        } else {
+            Axis {
+                log: false,
+                lo: 0.0,
+                hi: max * 1.08,
+            }
+        }
+    }
+
+    /// Position of `v` in [0, 1]; zero (and anything below the axis) sits on the floor.
+    pub fn frac(&self, v: f64) -> f32 {
+        let t = if self.log {
+            if v <= 0.0 {
+                0.0
+            } else {
+                (v.log10() - self.lo) / (self.hi - self.lo)
+            }
+        } else {
+            (v - self.lo) / (self.hi - self.lo)
+        };
+        t.clamp(0.0, 1.0) as f32
+    }
+
+    /// Tick values: every decade on a log axis, five even steps on a linear one.
+    pub fn ticks(&self) -> Vec<f64> {
+        if self.log {
+            (self.lo as i32..=self.hi as i32)
+                .map(|e| 10f64.powi(e))
+                .collect()
+        } else {
+            (0..=4).map(|k| self.hi * k as f64 / 4.0).collect()
+        }
+    }
+}
+
+fn chart(ui: &mut egui::Ui, groups: &[GroupDrift], log_y: bool) {
     let (blocks, starts) = positions(groups);
     ui.horizontal_wrapped(|ui| {
         for g in DriftGroup::ALL {
@@ -273,19 +334,14 @@ fn chart(ui: &mut egui::Ui, groups: &[GroupDrift]) {
         rect.min + Vec2::new(56.0, 10.0),
         rect.max - Vec2::new(10.0, 26.0),
     );
-    let y_max = groups
-        .iter()
-        .filter_map(|g| g.relative_change)
-        .fold(0.0f64, f64::max)
-        .max(1e-12)
-        * 1.08;
+    let values: Vec<f64> = groups.iter().filter_map(|g| g.relative_change).collect();
+    let y_axis = Axis::new(&values, log_y);
     let n = blocks.len();
     let x_at = |i: f32| plot.min.x + (i + 0.5) / n as f32 * plot.width();
-    let y_at = |v: f64| plot.max.y - (v / y_max) as f32 * plot.height();
+    let y_at = |v: f64| plot.max.y - y_axis.frac(v) * plot.height();
     let axis = Color32::from_gray(150);
     let font = egui::FontId::proportional(11.0);
-    for k in 0..=4 {
-        let v = y_max * k as f64 / 4.0;
+    for v in y_axis.ticks() {
         let y = y_at(v);
         painter.line_segment(
             [Pos2::new(plot.min.x, y), Pos2::new(plot.max.x, y)],
@@ -294,7 +350,11 @@ fn chart(ui: &mut egui::Ui, groups: &[GroupDrift]) {
         painter.text(
             Pos2::new(plot.min.x - 4.0, y),
             egui::Align2::RIGHT_CENTER,
-            format!("{v:.3}"),
+            if y_axis.log {
+                format!("{v:e}")
+            } else {
+                format!("{v:.3}")
+            },
             font.clone(),
             axis,
         );
@@ -397,6 +457,18 @@ mod tests {
             relative_change: rc,
             base_norm: n,
         }
+    }
+
+    #[test]
+    fn log_axis_spans_whole_decades_and_puts_zero_on_the_floor() {
+        let a = Axis::new(&[0.0, 0.02, 3.4], true);
+        assert_eq!(a.ticks(), vec![0.01, 0.1, 1.0, 10.0]);
+        assert_eq!(a.frac(0.0), 0.0);
+        assert!((a.frac(0.1) - 1.0 / 3.0).abs() < 1e-6);
+        let l = Axis::new(&[0.0, 2.0], false);
+        assert!((l.frac(1.08) - 0.5).abs() < 1e-6);
+        // Nothing positive: a log axis falls back to linear.
+        assert!(!Axis::new(&[0.0], true).log);
     }
 
     #[test]
