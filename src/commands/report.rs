@@ -21,9 +21,14 @@ pub struct ReportArgs {
     /// Folder for regions.csv, summary.json, the per-image records and any figures.
     #[arg(long, value_name = "DIR")]
     pub out: PathBuf,
-    /// Scalar map to measure: norm (token L2 norm) or channel:N.
+    /// Scalar map to measure: norm (token L2 norm), channel:N, or difference (1 - cosine per
+    /// token between --base and --weights; needs --base).
     #[arg(long, default_value = "norm", value_parser = parse_map, value_name = "KIND")]
     pub map: MapArg,
+    /// The checkpoint to compare with (A) for --map difference; it keeps its own layout's
+    /// padding rules unless --pad-order / --small-stage are given.
+    #[arg(long, value_name = "FILE")]
+    pub base: Option<PathBuf>,
     /// Also save one figure per image, regions outlined, in OUT/figures/.
     #[arg(long)]
     pub figures: bool,
@@ -45,6 +50,7 @@ impl ReportArgs {
             regions: self.regions.clone(),
             out: self.out.clone(),
             map: self.map.0.clone(),
+            base: self.base.clone(),
             figures: self.figures,
             force: self.force,
             shard: self.shard,

@@ -10,9 +10,10 @@
 //! at the end of every run, through temporary files and renames. A run holds an exclusive lock
 //! on `OUT` (see [`crate::io::lock_folder`]); a second run on the same folder is refused.
 
+use crate::analysis::compare::pair_problem;
 use crate::analysis::{
-    prepare_stages, region_stats, Colormap, Map, MapKind, PreparedStage, RegionStats, ScaleSpec,
-    CAUTION,
+    prepare_stage_pair, region_stats, Colormap, Map, MapKind, PreparedStage, RegionStats,
+    ScaleSpec, CAUTION,
 };
 use crate::annotation::{self, Sidecar};
 use crate::engine::{Session, SessionOptions};
@@ -46,6 +47,9 @@ pub struct ReportOptions {
     pub out: PathBuf,
     /// The scalar map to measure.
     pub map: std::sync::Arc<dyn MapKind>,
+    /// A second checkpoint (A) for map kinds that compare two (the difference map): each image
+    /// also runs through it, with its own layout's padding rules unless the run overrides them.
+    pub base: Option<PathBuf>,
     /// Also save one figure per image, regions outlined, in OUT/figures/.
     pub figures: bool,
     /// Recompute every image, even those already done with the same inputs.
@@ -160,6 +164,7 @@ impl ReportOptions {
             regions: None,
             out,
             map: std::sync::Arc::new(crate::analysis::TokenNorm),
+            base: None,
             figures: false,
             force: false,
             shard: None,
@@ -263,6 +268,9 @@ struct Inputs {
     normalisation: String,
     image: String,
     sidecar: String,
+    /// The base checkpoint's content hash, for maps that compare two.
+    #[serde(default)]
+    base: Option<String>,
 }
 
 /// The record an image leaves in `OUT/.done/` once its rows are computed.
@@ -395,6 +403,8 @@ enum Done {
 struct Context<'a> {
     args: &'a ReportOptions,
     session: Session,
+    /// The base checkpoint's session and content hash, when the map compares two.
+    base: Option<(Session, String)>,
     done_dir: PathBuf,
     figures_dir: Option<PathBuf>,
     hashes: ContentHashes,
@@ -418,14 +428,19 @@ impl Context<'_> {
             normalisation: format!("mean {:?} std {:?}", s.norm.mean, s.norm.std),
             image: self.hashes.hash(image)?,
             sidecar: hash_bytes(sidecar_bytes),
+            base: self.base.as_ref().map(|b| b.1.clone()),
         })
     }
 
     /// The settings every image's key shares, in one line (a merge compares shards by it).
     fn settings(&self) -> String {
         let s = &self.session;
+        let base = self
+            .base
+            .as_ref()
+            .map_or(String::new(), |b| format!(" base {}", b.1));
         format!(
-            "mullion {} map {} weights {} config {} semantics {}/{} mean {:?} std {:?}",
+            "mullion {} map {}{base} weights {} config {} semantics {}/{} mean {:?} std {:?}",
             env!("CARGO_PKG_VERSION"),
             self.args.map.id(),
             self.weights,
@@ -481,13 +496,29 @@ impl Context<'_> {
                 ),
             ));
         }
+        // A map that compares two checkpoints gets the base's pass of the same image.
+        let other = match &self.base {
+            Some((b, _)) => {
+                let o = b.run_image(image, false, false)?;
+                if let Some(p) = pair_problem(&o, &out) {
+                    return Err(Error::BadArgument(format!("{name}: {p}")));
+                }
+                Some(o)
+            }
+            None => None,
+        };
         // With figures, the shared preparation gives the raw maps and their display form at once.
         let (maps, display) = if figure_path.is_some() {
-            let (raw, shown) = prepare_stages(&out, self.args.map.as_ref(), &ScaleSpec::default())?;
+            let (raw, shown) = prepare_stage_pair(
+                &out,
+                other.as_ref(),
+                self.args.map.as_ref(),
+                &ScaleSpec::default(),
+            )?;
             (raw, Some(shown))
         } else {
             let raw = (0..out.stages.len())
-                .map(|s| self.args.map.compute(&out, s))
+                .map(|s| self.args.map.compute_pair(&out, other.as_ref(), s))
                 .collect::<Result<Vec<Map>>>()?;
             (raw, None)
         };
@@ -556,9 +587,16 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
                 .into(),
         ));
     }
-    if args.map.needs_pair() {
+    if args.base.is_some() && !args.map.needs_pair() {
         return Err(Error::BadArgument(format!(
-            "--map {} compares two checkpoints; the report runs one (use mullion compare)",
+            "--base is used only by maps that compare two checkpoints (--map difference), not \
+             by --map {}",
+            args.map.id()
+        )));
+    }
+    if args.map.needs_pair() && args.base.is_none() {
+        return Err(Error::BadArgument(format!(
+            "--map {} compares two checkpoints: give the second with --base FILE",
             args.map.id()
         )));
     }
@@ -585,6 +623,9 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let csv_path = out_dir.join(CSV_NAME);
     let summary_path = out_dir.join(SUMMARY_NAME);
     let mut inputs = vec![("--weights", args.session.weights.as_path())];
+    if let Some(b) = &args.base {
+        inputs.push(("--base", b.as_path()));
+    }
     if let Some(c) = &args.session.config {
         inputs.push(("--config", c.as_path()));
     }
@@ -606,6 +647,17 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let session = Session::open(&args.session)?;
     let hashes = ContentHashes::default();
     let weights = hashes.hash(&args.session.weights)?;
+    // Only a map that compares two runs the base; for the others it would change nothing.
+    let base = match &args.base {
+        Some(b) => {
+            let mut o = args.session.clone();
+            o.weights = b.clone();
+            o.config = None;
+            let s = Session::open(&o)?;
+            Some((s, hashes.hash(b)?))
+        }
+        None => None,
+    };
     let config = args
         .session
         .config
@@ -615,6 +667,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     let ctx = Context {
         args,
         session,
+        base,
         done_dir,
         figures_dir,
         hashes,

@@ -860,3 +860,126 @@ fn a_broken_image_is_listed_and_the_run_fails_after_writing() {
         serde_json::from_str(&std::fs::read_to_string(out.join("summary.json")).unwrap()).unwrap();
     assert_eq!(summary["failed"][0]["image"], "broken.png");
 }
+
+/// The report measures the difference map with `--base`: a box over the whole image has
+/// `inside_mean` = 1 - the mean cosine that `compare` writes for the image (two separate code
+/// paths: the report's region weights and the comparison's per-token cosines).
+#[test]
+fn report_with_a_base_measures_the_difference_map() {
+    let dir = tempfile::tempdir().unwrap();
+    let images = dir.path().join("images");
+    std::fs::create_dir(&images).unwrap();
+    let name = "tray-03-97x160.png";
+    std::fs::copy(sample(name), images.join(name)).unwrap();
+    let mut sc = mullion::annotation::Sidecar::new(name, 97, 160);
+    sc.add_region(
+        mullion::annotation::Shape::Box {
+            x0: 0.0,
+            y0: 0.0,
+            x1: 97.0,
+            y1: 160.0,
+        },
+        "whole tray",
+        "",
+    );
+    mullion::annotation::save(&images.join(format!("{name}.regions.json")), &sc).unwrap();
+    let (a, b) = (sample("demo-early.safetensors"), sample("demo.safetensors"));
+    let rep = dir.path().join("rep");
+    let r = mullion(&[
+        "report",
+        "--weights",
+        b.to_str().unwrap(),
+        "--base",
+        a.to_str().unwrap(),
+        "--map",
+        "difference",
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        rep.to_str().unwrap(),
+        "--figures",
+    ]);
+    assert!(r.ok(), "{}", r.stderr);
+    let cmp = dir.path().join("cmp");
+    let c = mullion(&[
+        "compare",
+        "--base",
+        a.to_str().unwrap(),
+        "--tuned",
+        b.to_str().unwrap(),
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        cmp.to_str().unwrap(),
+    ]);
+    assert!(c.ok(), "{}", c.stderr);
+    let rows = read_csv(&rep.join("regions.csv"));
+    let stages = read_csv(&cmp.join("stages.csv"));
+    assert_eq!(rows.len(), 4);
+    for row in &rows {
+        assert_eq!(row["map"], "difference");
+        let s = &row["stage"];
+        let st = stages
+            .iter()
+            .find(|x| x["image"] == name && &x["stage"] == s)
+            .unwrap();
+        let (inside, mean_cos) = (num(row, "inside_mean"), num(st, "mean_cosine"));
+        assert!(
+            (inside - (1.0 - mean_cos)).abs() < 1e-6,
+            "stage {s}: inside {inside} vs 1 - {mean_cos}"
+        );
+    }
+    assert!(rep
+        .join("figures")
+        .join(mullion::io::figure_file_name(Path::new(name), "difference"))
+        .is_file());
+    // The base is part of the rerun key: another base recomputes.
+    let again = mullion(&[
+        "report",
+        "--weights",
+        b.to_str().unwrap(),
+        "--base",
+        b.to_str().unwrap(),
+        "--map",
+        "difference",
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        rep.to_str().unwrap(),
+    ]);
+    assert!(
+        again.stderr.contains("1 computed, 0 reused"),
+        "{}",
+        again.stderr
+    );
+    // Against itself the difference is zero everywhere.
+    for row in read_csv(&rep.join("regions.csv")) {
+        assert!(num(&row, "inside_mean").abs() < 1e-6, "{row:?}");
+    }
+    // Usage: the difference without a base, and a base with a map of one checkpoint.
+    let no_base = mullion(&[
+        "report",
+        "--weights",
+        b.to_str().unwrap(),
+        "--map",
+        "difference",
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        dir.path().join("x").to_str().unwrap(),
+    ]);
+    assert_eq!(no_base.code, 2, "{}", no_base.stderr);
+    assert!(no_base.stderr.contains("--base"), "{}", no_base.stderr);
+    let base_unused = mullion(&[
+        "report",
+        "--weights",
+        b.to_str().unwrap(),
+        "--base",
+        a.to_str().unwrap(),
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        dir.path().join("y").to_str().unwrap(),
+    ]);
+    assert_eq!(base_unused.code, 2, "{}", base_unused.stderr);
+}
