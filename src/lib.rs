@@ -6,7 +6,7 @@
 //!
 //! ```text
 //! error, io, numeric,    the foundation: errors, atomic files, image listing, AUROC, the
-//! caution                caution text
+//! caution, probe         caution text, the per-thread count of heavy work
 //! engine                 geometry, config, checkpoint, layers, model, input, session, worker
 //! annotation             shapes and clipping, the sidecar file, undo history, palette
 //! analysis               map kinds, PCA, scaling, colour maps, statistics, map preparation,
@@ -32,6 +32,7 @@ pub mod error;
 pub mod headless;
 pub mod io;
 pub mod numeric;
+pub mod probe;
 pub mod render;
 
 pub use error::{Error, Result};

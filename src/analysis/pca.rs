@@ -42,6 +42,7 @@ pub struct PcaFit {
 /// Fit PCA on a token matrix: center, form the C x C covariance, and take its eigen-decomposition
 /// (nalgebra's symmetric eigen solver), in f64.
 pub fn fit_pca(t: &Tokens) -> Result<PcaFit> {
+    crate::probe::heavy_work();
     let (n, c) = (t.len(), t.channels);
     if n < 2 || c == 0 {
         return Err(Error::BadArgument(format!(

@@ -40,6 +40,7 @@ pub fn prepare_stage_pair(
     kind: &dyn MapKind,
     spec: &ScaleSpec,
 ) -> Result<(Vec<Map>, Vec<PreparedStage>)> {
+    crate::probe::heavy_work();
     if kind.needs_pair() && other.is_none() {
         return Err(crate::error::Error::BadArgument(format!(
             "the map '{}' compares two checkpoints; give a second one",

@@ -93,6 +93,7 @@ pub fn rows_csv(rows: &[RegionStats]) -> Result<String> {
 /// Per token of `stage` (row-major over `stage.grid`), the fraction of its footprint inside
 /// `image` (height, width) that `shape` covers. Tokens with an empty footprint get 0.
 pub fn token_weights(stage: &StageGeometry, image: (usize, usize), shape: &Shape) -> Vec<f64> {
+    crate::probe::heavy_work();
     let (rows, cols) = stage.grid;
     let mut w = vec![0.0; rows * cols];
     let Some(b) = shape.bounds() else { return w };
@@ -191,6 +192,7 @@ pub fn region_stats(
     regions: &[Region],
     image: &str,
 ) -> Result<Vec<RegionStats>> {
+    crate::probe::heavy_work();
     let g = &out.geometry;
     if maps.len() != g.stages.len() {
         return Err(Error::BadArgument(format!(

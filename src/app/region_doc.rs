@@ -1,14 +1,30 @@
 //! The current image's regions as the window holds them: the sidecar, where it is saved, the
 //! undo history, the selection, and the statistics and highlight derived from the maps on
 //! screen. Every edit is saved at once, atomically; a failed save keeps the work in memory and
-//! says so.
+//! says so. The statistics and the highlight are computed on a thread of their own; numbers
+//! that no longer belong to the maps and regions on screen are dropped at once, never shown
+//! while the new ones are computed.
 
 use super::actions::RegionEdit;
+use super::loading::Wake;
 use super::pictures::PreparedMaps;
 use crate::analysis::{region_stats, token_weights, RegionStats, INSIDE_WEIGHT};
 use crate::annotation::{self, Edits, Shape, Sidecar};
 use crate::error::Result;
 use std::path::{Path, PathBuf};
+use std::sync::mpsc::{channel, Receiver, TryRecvError};
+use std::sync::Arc;
+
+/// What the statistics thread gives: the rows (when asked), the highlight, and a problem.
+type Derived = (Option<Vec<RegionStats>>, Vec<[f32; 4]>, Option<String>);
+
+/// What the derived numbers depend on: maps, regions revision, lens stage, selection.
+type DerivedKey = (u64, u64, usize, Option<u64>);
+
+struct DerivedJob {
+    key: DerivedKey,
+    rx: Receiver<Derived>,
+}
 
 /// What a region file read on the loader thread gave.
 pub type LoadedSidecar = Result<Option<(Sidecar, Vec<String>)>>;
@@ -31,8 +47,11 @@ pub struct RegionDoc {
     pub highlight: Vec<[f32; 4]>,
     /// Bumped by every change, so derived numbers know when to recompute.
     revision: u64,
+    /// The (maps, revision) the rows on screen belong to.
     stats_for: Option<(u64, u64)>,
-    highlight_for: Option<(u64, u64, usize, Option<u64>)>,
+    /// The key the highlight on screen belongs to.
+    highlight_for: Option<DerivedKey>,
+    job: Option<DerivedJob>,
     /// The region whose note the last edit changed, so typing is one undo step.
     last_note: Option<u64>,
     /// The label list of the image closed last, for a new image without a region file.
@@ -56,6 +75,7 @@ impl Default for RegionDoc {
             revision: 0,
             stats_for: None,
             highlight_for: None,
+            job: None,
             last_note: None,
             carry_labels: Vec::new(),
             carry_from: None,
@@ -261,64 +281,135 @@ impl RegionDoc {
             .map(|e| format!("regions not saved (they are kept in the window): {e}"))
     }
 
-    /// Recompute the statistics and the lens highlight when the maps, the regions, the lens
-    /// stage or the selection changed. Returns an error message if the statistics failed.
-    pub fn refresh(&mut self, maps: Option<&PreparedMaps>, lens_stage: usize) -> Option<String> {
-        let Some(maps) = maps else {
+    /// Whether the statistics thread is working.
+    pub fn is_busy(&self) -> bool {
+        self.job.is_some()
+    }
+
+    /// Bring the statistics and the lens highlight up to date with the maps, the regions, the
+    /// lens stage and the selection: numbers of anything else are dropped at once and new ones
+    /// computed on a thread (`wake` is called when they are ready). Returns an error message
+    /// when the statistics failed.
+    pub fn refresh(
+        &mut self,
+        maps: Option<&Arc<PreparedMaps>>,
+        lens_stage: usize,
+        wake: Wake,
+    ) -> Option<String> {
+        let (Some(maps), Some(sc)) = (maps, &self.sidecar) else {
             self.stats.clear();
             self.highlight.clear();
             self.stats_for = None;
             self.highlight_for = None;
+            self.job = None;
             return None;
         };
-        let Some(sc) = &self.sidecar else {
+        let key = (maps.id, self.revision, lens_stage, self.selected);
+        let stats_key = (maps.id, self.revision);
+        if self.stats_for != Some(stats_key) {
+            self.stats.clear();
+        }
+        if self.highlight_for != Some(key) {
+            self.highlight.clear();
+        }
+        if self.stats_for == Some(stats_key) && self.highlight_for == Some(key) {
+            self.job = None;
             return None;
-        };
-        let mut problem = None;
-        if self.stats_for != Some((maps.id, self.revision)) {
-            self.stats_for = Some((maps.id, self.revision));
-            self.stats = if maps.raw.iter().any(|m| m.scalars().is_none()) {
-                Vec::new()
-            } else {
-                match region_stats(
-                    &maps.outputs,
-                    &maps.raw,
-                    &maps.map_id,
-                    &sc.regions,
-                    &sc.image,
-                ) {
-                    Ok(s) => s,
-                    Err(e) => {
-                        problem = Some(e.to_string());
-                        Vec::new()
+        }
+        if let Some(job) = self.job.as_ref().filter(|j| j.key == key) {
+            return match job.rx.try_recv() {
+                Ok((stats, highlight, problem)) => {
+                    if let Some(rows) = stats {
+                        self.stats = rows;
+                        self.stats_for = Some(stats_key);
                     }
+                    self.highlight = highlight;
+                    self.highlight_for = Some(key);
+                    self.job = None;
+                    problem
+                }
+                Err(TryRecvError::Empty) => None,
+                Err(TryRecvError::Disconnected) => {
+                    self.job = None;
+                    self.stats_for = Some(stats_key);
+                    self.highlight_for = Some(key);
+                    Some("internal: the region statistics thread stopped".into())
                 }
             };
         }
-        let key = (maps.id, self.revision, lens_stage, self.selected);
-        if self.highlight_for != Some(key) {
-            self.highlight_for = Some(key);
-            self.highlight.clear();
-            let g = &maps.outputs.geometry;
-            let (Some(r), Some(sg)) = (
-                self.selected.and_then(|id| sc.region(id)),
-                g.stages.get(lens_stage),
-            ) else {
-                return problem;
-            };
-            // Regions are marked in image pixels; the maps may be of a resized input.
-            let (sx, sy) = maps.image_to_input();
-            let shape = scale_shape(&r.shape, sx, sy);
-            for (i, &w) in token_weights(sg, g.image, &shape).iter().enumerate() {
-                if w >= INSIDE_WEIGHT {
-                    let f = sg.footprint(i / sg.grid.1, i % sg.grid.1, g.image);
-                    self.highlight
-                        .push([f[2] as f32, f[0] as f32, f[3] as f32, f[1] as f32]);
+        let need_stats = self.stats_for != Some(stats_key);
+        let (maps, sc) = (maps.clone(), sc.clone());
+        let selected = self.selected;
+        let (tx, rx) = channel();
+        let spawned = std::thread::Builder::new()
+            .name("mullion-region-stats".into())
+            .spawn(move || {
+                let stats = need_stats.then(|| compute_stats(&maps, &sc));
+                let (rows, problem) = match stats {
+                    Some(Ok(rows)) => (Some(rows), None),
+                    Some(Err(e)) => (Some(Vec::new()), Some(e.to_string())),
+                    None => (None, None),
+                };
+                let highlight = compute_highlight(&maps, &sc, lens_stage, selected);
+                let _ = tx.send((rows, highlight, problem));
+                if let Some(w) = wake {
+                    w();
                 }
+            });
+        match spawned {
+            Ok(_) => {
+                self.job = Some(DerivedJob { key, rx });
+                None
+            }
+            Err(e) => {
+                self.stats_for = Some(stats_key);
+                self.highlight_for = Some(key);
+                Some(format!("cannot start the region statistics: {e}"))
             }
         }
-        problem
     }
+}
+
+/// One row per region and stage for scalar maps; none for colour maps.
+fn compute_stats(maps: &PreparedMaps, sc: &Sidecar) -> Result<Vec<RegionStats>> {
+    if maps.raw.iter().any(|m| m.scalars().is_none()) {
+        return Ok(Vec::new());
+    }
+    region_stats(
+        &maps.outputs,
+        &maps.raw,
+        &maps.map_id,
+        &sc.regions,
+        &sc.image,
+    )
+}
+
+/// Footprints (input pixels) of the lens stage's tokens inside the selected region.
+fn compute_highlight(
+    maps: &PreparedMaps,
+    sc: &Sidecar,
+    lens_stage: usize,
+    selected: Option<u64>,
+) -> Vec<[f32; 4]> {
+    let g = &maps.outputs.geometry;
+    let (Some(r), Some(sg)) = (
+        selected.and_then(|id| sc.region(id)),
+        g.stages.get(lens_stage),
+    ) else {
+        return Vec::new();
+    };
+    // Regions are marked in image pixels; the maps may be of a resized input.
+    let (sx, sy) = maps.image_to_input();
+    let shape = scale_shape(&r.shape, sx, sy);
+    token_weights(sg, g.image, &shape)
+        .iter()
+        .enumerate()
+        .filter(|(_, &w)| w >= INSIDE_WEIGHT)
+        .map(|(i, _)| {
+            let f = sg.footprint(i / sg.grid.1, i % sg.grid.1, g.image);
+            [f[2] as f32, f[0] as f32, f[3] as f32, f[1] as f32]
+        })
+        .collect()
 }
 
 /// A box with its corners in order; polygons as they are.

@@ -626,6 +626,7 @@ impl Workbench {
             || self.loader.is_busy()
             || self.pictures.is_busy()
             || self.pictures.has_upload()
+            || self.regions.is_busy()
             || self.exporting.is_some()
     }
 
@@ -755,7 +756,11 @@ impl Workbench {
             .pictures
             .lens_stage()
             .unwrap_or(self.settings.focus_stage);
-        if let Some(problem) = self.regions.refresh(self.pictures.maps.as_deref(), lens) {
+        let wake = self.wake();
+        if let Some(problem) = self
+            .regions
+            .refresh(self.pictures.maps.as_ref(), lens, wake)
+        {
             self.error(problem);
         }
     }
@@ -770,6 +775,7 @@ impl Workbench {
             let busy = self.is_busy()
                 || self.loader.is_busy()
                 || self.pictures.is_busy()
+                || self.regions.is_busy()
                 || self.exporting.is_some();
             if !busy {
                 return true;
@@ -806,6 +812,10 @@ impl Workbench {
         };
         if self.exporting.is_some() {
             self.error("a figure is still being saved; try again in a moment");
+            return;
+        }
+        if self.regions.is_busy() {
+            self.error("the region numbers are still being computed; save again in a moment");
             return;
         }
         let req = ExportRequest {

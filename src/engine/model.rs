@@ -265,6 +265,7 @@ impl Backbone {
         opts: &ForwardOptions,
         ctl: &RunControl,
     ) -> Result<StageOutputs> {
+        crate::probe::heavy_work();
         let (c, h, w) = image.dims3()?;
         if c != self.config.in_chans {
             return Err(Error::BadArgument(format!(

@@ -188,6 +188,7 @@ fn blit(dst: &mut RgbaImage, src: &RgbaImage, x: u32, y: u32) {
 /// The full figure: the image, then one panel per stage side by side, each with a title and
 /// a legend right below it, and a caption (checkpoint, input size, map kind, grid key, caution) below.
 pub fn compose_figure(spec: &FigureSpec) -> Result<RgbaImage> {
+    crate::probe::heavy_work();
     let g = spec.geometry;
     let style = &spec.style;
     let px = spec.text_px.clamp(8.0, 64.0);

@@ -76,6 +76,7 @@ pub fn format_tick(v: f32, step: f32) -> String {
 /// A colour bar with numbered ticks. Horizontal when `width >= height` (bar on top, numbers
 /// below), otherwise vertical (bar on the left, numbers to its right, high end at the top).
 pub fn render_legend(colormap: Colormap, range: &ScaleRange, width: u32, height: u32) -> RgbaImage {
+    crate::probe::heavy_work();
     let (width, height) = (width.max(8), height.max(8));
     let mut img = RgbaImage::from_pixel(
         width,
@@ -160,6 +161,7 @@ pub fn render_legend(colormap: Colormap, range: &ScaleRange, width: u32, height:
 /// The key of an RGB (principal component) map: three swatches named PC1..PC3, with the share
 /// of variance each explains when given.
 pub fn render_rgb_legend(explained: Option<&[f64]>, width: u32, height: u32) -> RgbaImage {
+    crate::probe::heavy_work();
     let (width, height) = (width.max(8), height.max(8));
     let mut img = RgbaImage::from_pixel(
         width,

@@ -186,6 +186,7 @@ pub fn render_panel(
     stage: usize,
     style: &PanelStyle,
 ) -> Result<RgbaImage> {
+    crate::probe::heavy_work();
     let (w, h) = image.dimensions();
     if (h as usize, w as usize) != geometry.image {
         return Err(Error::BadArgument(format!(

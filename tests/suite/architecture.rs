@@ -10,11 +10,12 @@ use std::collections::{BTreeMap, BTreeSet};
 use std::path::Path;
 
 /// The rooms, bottom first; a file may import from its own room or from a room ranked lower.
-const LAYERS: [(&str, u32); 12] = [
+const LAYERS: [(&str, u32); 13] = [
     ("error", 0),
     ("io", 1),
     ("numeric", 1),
     ("caution", 1),
+    ("probe", 1),
     ("engine", 2),
     ("annotation", 3),
     ("analysis", 4),
@@ -26,7 +27,15 @@ const LAYERS: [(&str, u32); 12] = [
 ];
 
 /// What the demo may use besides itself.
-const DEMO_MAY_USE: [&str; 6] = ["error", "io", "numeric", "caution", "engine", "annotation"];
+const DEMO_MAY_USE: [&str; 7] = [
+    "error",
+    "io",
+    "numeric",
+    "caution",
+    "probe",
+    "engine",
+    "annotation",
+];
 
 /// One source file: its module path and its text without comments.
 struct SourceFile {

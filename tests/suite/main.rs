@@ -14,5 +14,6 @@ mod real_window;
 mod reference_outputs;
 mod regions;
 mod render;
+mod responsive;
 mod window;
 mod worker;
