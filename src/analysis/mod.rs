@@ -11,6 +11,7 @@
 pub mod colormap;
 mod colormap_data;
 pub mod compare;
+pub mod inspect;
 pub mod kinds;
 pub mod map;
 pub mod pca;
