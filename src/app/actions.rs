@@ -68,6 +68,13 @@ pub enum Action {
     /// Every setting at once, as a panel edited them; the state works out what changed.
     SetSettings(Box<Settings>),
     FocusStage(usize),
+    /// The attention inspector's query: a token of a stage grid.
+    InspectToken {
+        stage: usize,
+        row: usize,
+        col: usize,
+    },
+    ClearInspect,
     /// Run the current image again (after a cancel or a failure).
     Rerun,
     CancelRun,

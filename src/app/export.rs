@@ -25,6 +25,9 @@ pub struct ExportRequest {
     pub paths: ExportPaths,
     /// The region statistics of the maps on screen (written beside the figure when any).
     pub rows: Vec<crate::analysis::RegionStats>,
+    /// The attention inspector's query, its attention and its lines, when one is shown: the
+    /// figure then carries the spotlighted stage below the stages.
+    pub inspected: Option<(usize, crate::analysis::inspect::QueryAttention, Vec<String>)>,
 }
 
 /// The files one save writes.
@@ -98,7 +101,7 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
     } else {
         None
     };
-    let fig = render::compose_figure(&FigureSpec {
+    let main = render::compose_figure(&FigureSpec {
         image: &annotated,
         geometry: &maps.outputs.geometry,
         stages: &maps.stages,
@@ -108,6 +111,30 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
         notes: notes.clone(),
         text_px: render::figure_text_px(scale),
     })?;
+    let fig = match &req.inspected {
+        Some((stage, q, lines)) => {
+            let st = maps.stages.get(*stage).ok_or_else(|| {
+                crate::error::Error::Internal(format!("no stage {stage} to inspect"))
+            })?;
+            let style = render::figure_panel_style(
+                req.draw.colormap,
+                req.draw.opacity,
+                req.overlays,
+                scale,
+            );
+            let part = render::spotlight::attention_figure(
+                &annotated,
+                &maps.outputs.geometry,
+                st,
+                &style,
+                q,
+                lines,
+                render::figure_text_px(scale),
+            )?;
+            render::stack_figures(&[main, part])?
+        }
+        None => main,
+    };
     crate::io::save_png_atomic(&fig, &req.paths.png)?;
     if let Some(stats) = &stats {
         write_stats_json(stats, &req.paths.stats_json)?;

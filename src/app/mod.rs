@@ -10,6 +10,7 @@
 pub mod actions;
 pub mod canvas;
 pub mod export;
+pub mod inspector;
 pub mod loading;
 pub mod overlay;
 pub mod panels;

@@ -37,6 +37,13 @@ pub struct Settings {
     pub block_pair: usize,
     pub focus_stage: usize,
     pub opacity: f32,
+    /// Clicking a stage picture picks the token whose attention the inspector shows.
+    #[serde(skip)]
+    pub inspecting: bool,
+    /// The block of the query's stage whose attention is shown (clamped to the stage's depth).
+    pub inspect_block: usize,
+    /// One head, or `None` for the mean over heads.
+    pub inspect_head: Option<usize>,
     pub recent_images: Vec<PathBuf>,
     pub recent_weights: Vec<PathBuf>,
 }
@@ -62,6 +69,9 @@ impl Default for Settings {
             block_pair: 0,
             focus_stage: 0,
             opacity: 0.6,
+            inspecting: false,
+            inspect_block: 0,
+            inspect_head: None,
             recent_images: Vec::new(),
             recent_weights: Vec::new(),
         }

@@ -13,6 +13,7 @@ use super::pictures::{DrawKey, Pictures};
 use super::region_doc::RegionDoc;
 use super::settings::Settings;
 use crate::analysis::compare::{group_drift, Drift, GroupDrift};
+use crate::analysis::inspect::{query_attention, QueryAttention};
 use crate::engine::input::DEFAULT_MEMORY_LIMIT;
 use crate::engine::worker::{Event, Job};
 use crate::engine::{Backbone, Config, ForwardOptions, LoadReport, Progress, StageOutputs};
@@ -76,6 +77,24 @@ pub struct DriftView {
     pub groups: Vec<GroupDrift>,
 }
 
+/// The attention inspector's query: a token of a stage grid.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct InspectQuery {
+    pub stage: usize,
+    pub row: usize,
+    pub col: usize,
+}
+
+/// What the inspector shows: the query's attention in one block, one head or the mean.
+pub struct Inspected {
+    /// The pass it came from, the query and the head.
+    key: (String, InspectQuery, Option<usize>),
+    pub query: InspectQuery,
+    pub block: usize,
+    pub shifted: bool,
+    pub attention: QueryAttention,
+}
+
 /// A running forward pass.
 struct Pending {
     key: String,
@@ -98,6 +117,10 @@ pub struct Workbench {
     /// The weight drift of the pair, once both checkpoints are files.
     pub drift: Option<DriftView>,
     pub show_drift: bool,
+    /// The attention inspector: the query token, what is shown for it, or why nothing is.
+    pub inspect: Option<InspectQuery>,
+    pub inspected: Option<Inspected>,
+    pub inspect_problem: Option<String>,
     /// Why there is no result for the current image and checkpoint (a failed or cancelled run).
     pub run_problem: Option<String>,
     pub messages: Vec<Message>,
@@ -116,6 +139,9 @@ pub struct Workbench {
     pub path_focus_requests: u64,
     pending: Option<Pending>,
     pending_base: Option<Pending>,
+    /// A pass that keeps one block's attention, for the inspector, and its result.
+    pending_attention: Option<Pending>,
+    attention_pass: Option<(String, Arc<StageOutputs>)>,
     exporting: Option<Receiver<Result<Exported>>>,
     cache: HashMap<String, (Arc<image::RgbImage>, Arc<StageOutputs>)>,
     cache_order: Vec<String>,
@@ -139,6 +165,9 @@ impl Workbench {
             shown_base: None,
             drift: None,
             show_drift: false,
+            inspect: None,
+            inspected: None,
+            inspect_problem: None,
             run_problem: None,
             messages: Vec::new(),
             show_help: false,
@@ -152,6 +181,8 @@ impl Workbench {
             path_focus_requests: 0,
             pending: None,
             pending_base: None,
+            pending_attention: None,
+            attention_pass: None,
             exporting: None,
             cache: HashMap::new(),
             cache_order: Vec::new(),
@@ -245,6 +276,9 @@ impl Workbench {
         self.image = None;
         self.shown = None;
         self.shown_base = None;
+        self.inspect = None;
+        self.inspected = None;
+        self.inspect_problem = None;
         self.run_problem = None;
         self.pictures.clear();
         self.regions.close();
@@ -591,9 +625,13 @@ impl Workbench {
 
     /// Stop the running forward passes, if any, without a message.
     fn cancel_run(&mut self) {
-        for p in [self.pending.take(), self.pending_base.take()]
-            .into_iter()
-            .flatten()
+        for p in [
+            self.pending.take(),
+            self.pending_base.take(),
+            self.pending_attention.take(),
+        ]
+        .into_iter()
+        .flatten()
         {
             p.job.cancel();
         }
@@ -617,7 +655,12 @@ impl Workbench {
     }
 
     pub fn is_busy(&self) -> bool {
-        self.pending.is_some() || self.pending_base.is_some()
+        self.pending.is_some() || self.pending_base.is_some() || self.pending_attention.is_some()
+    }
+
+    /// The inspector's attention pass, when one runs: its progress.
+    pub fn attention_running(&self) -> Option<Option<Progress>> {
+        self.pending_attention.as_ref().map(|p| p.progress)
     }
 
     /// Whether anything is still working: a load, a run, the pictures or a save.
@@ -698,6 +741,7 @@ impl Workbench {
         }
         self.poll_slot(Slot::Main);
         self.poll_slot(Slot::Base);
+        self.poll_attention();
         if let Some(msg) = self.pictures.poll() {
             self.error(msg);
         }
@@ -752,6 +796,7 @@ impl Workbench {
                 }
             }
         }
+        self.refresh_inspector();
         let lens = self
             .pictures
             .lens_stage()
@@ -762,6 +807,132 @@ impl Workbench {
             .refresh(self.pictures.maps.as_ref(), lens, wake)
         {
             self.error(problem);
+        }
+    }
+
+    /// The inspector's block for the query's stage: the one asked for, clamped to the stage.
+    pub fn inspect_block(&self, stage: usize) -> Option<usize> {
+        let depth = *self.weights.as_ref()?.model.config.depths.get(stage)?;
+        Some(self.settings.inspect_block.min(depth.checked_sub(1)?))
+    }
+
+    /// Keep the inspector in step with the query, block, head and result on screen: start the
+    /// pass that keeps the block's attention when it is missing, and read the query's row out
+    /// of it when it is there (a few dozen numbers, cheap enough for this thread).
+    fn refresh_inspector(&mut self) {
+        let (Some(q), Some(shown)) = (self.inspect, self.shown.as_ref()) else {
+            self.inspected = None;
+            return;
+        };
+        let Some(block) = self.inspect_block(q.stage) else {
+            self.inspected = None;
+            self.inspect_problem = Some(format!("stage {}: no such stage", q.stage));
+            return;
+        };
+        let key = format!("{}|attention of stage {} block {block}", shown.key, q.stage);
+        let head = self.settings.inspect_head;
+        let pass = self
+            .attention_pass
+            .as_ref()
+            .filter(|(k, _)| *k == key)
+            .map(|(_, o)| o.clone());
+        let Some(out) = pass else {
+            self.inspected = None;
+            if self.inspect_problem.is_none()
+                && self.pending_attention.as_ref().is_none_or(|p| p.key != key)
+            {
+                self.start_attention_pass(key, q.stage, block);
+            }
+            return;
+        };
+        let ikey = (key, q, head);
+        if self.inspected.as_ref().is_some_and(|i| i.key == ikey) {
+            return;
+        }
+        let bg = out
+            .geometry
+            .stages
+            .get(q.stage)
+            .and_then(|s| s.blocks.get(block));
+        let result = match (bg, &out.attention) {
+            (Some(bg), Some(tap)) => query_attention(&tap.weights, bg, (q.row, q.col), head)
+                .map(|a| (a, bg.is_shifted())),
+            _ => Err(Error::Internal("the pass kept no attention".into())),
+        };
+        match result {
+            Ok((attention, shifted)) => {
+                self.inspect_problem = None;
+                self.inspected = Some(Inspected {
+                    key: ikey,
+                    query: q,
+                    block,
+                    shifted,
+                    attention,
+                });
+            }
+            Err(e) => {
+                self.inspected = None;
+                self.inspect_problem = Some(e.to_string());
+                self.inspect = None;
+            }
+        }
+    }
+
+    fn start_attention_pass(&mut self, key: String, stage: usize, block: usize) {
+        if let Some(p) = self.pending_attention.take() {
+            p.job.cancel();
+        }
+        let (Some(img), Some(w)) = (&self.image, &self.weights) else {
+            return;
+        };
+        let wake: Option<Box<dyn Fn() + Send + Sync>> = self
+            .repaint
+            .clone()
+            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>);
+        let job = Job::spawn_image(
+            w.model.clone(),
+            img.pixels.clone(),
+            self.settings.policy,
+            self.settings.norm,
+            ForwardOptions {
+                semantics: Some(self.settings.semantics(w.model.default_semantics)),
+                attention_of: Some((stage, block)),
+                ..ForwardOptions::default()
+            },
+            wake,
+        );
+        self.pending_attention = Some(Pending {
+            key,
+            job,
+            input: None,
+            progress: None,
+        });
+    }
+
+    fn poll_attention(&mut self) {
+        let mut finished = None;
+        if let Some(p) = &mut self.pending_attention {
+            while let Some(ev) = p.job.poll() {
+                match ev {
+                    Event::Prepared(_) => {}
+                    Event::Progress(pr) => p.progress = Some(pr),
+                    Event::Finished(r) => {
+                        finished = Some(r);
+                        break;
+                    }
+                }
+            }
+        }
+        let Some(result) = finished else { return };
+        let p = self.pending_attention.take().expect("pending");
+        match result {
+            Ok(out) => self.attention_pass = Some((p.key, out)),
+            Err(Error::Cancelled) => {}
+            Err(e) => {
+                let msg = format!("attention inspector: {e}");
+                self.inspect_problem = Some(msg.clone());
+                self.error(msg);
+            }
         }
     }
 
@@ -831,6 +1002,20 @@ impl Workbench {
             base: self.base.as_ref().map(|w| w.name.clone()),
             paths,
             rows: self.regions.stats.clone(),
+            inspected: self.inspected.as_ref().map(|i| {
+                let mut lines = crate::app::inspector::describe(
+                    &i.attention,
+                    i.query.stage,
+                    i.block,
+                    i.shifted,
+                );
+                lines.push(
+                    "attention spotlight: bright where the query looks, veiled elsewhere; \
+                     crossed keys are removed by the shift mask"
+                        .into(),
+                );
+                (i.query.stage, i.attention.clone(), lines)
+            }),
         };
         let (tx, rx) = channel();
         let wake = self.wake();
@@ -913,6 +1098,16 @@ impl Workbench {
                     next.map_kind = self.settings.map_kind.clone();
                 }
                 let rerun = self.settings.needs_new_run(&next);
+                if (next.inspect_block, next.inspect_head)
+                    != (self.settings.inspect_block, self.settings.inspect_head)
+                {
+                    self.inspect_problem = None;
+                }
+                if self.settings.inspecting && !next.inspecting {
+                    self.inspect = None;
+                    self.inspected = None;
+                    self.inspect_problem = None;
+                }
                 self.settings = *next;
                 self.settings.focus_stage = self
                     .settings
@@ -920,6 +1115,18 @@ impl Workbench {
                     .min(self.n_stages().saturating_sub(1));
                 if rerun {
                     self.request();
+                }
+            }
+            Action::InspectToken { stage, row, col } => {
+                self.inspect = Some(InspectQuery { stage, row, col });
+                self.inspect_problem = None;
+            }
+            Action::ClearInspect => {
+                self.inspect = None;
+                self.inspected = None;
+                self.inspect_problem = None;
+                if let Some(p) = self.pending_attention.take() {
+                    p.job.cancel();
                 }
             }
             Action::FocusStage(i) => {

@@ -8,6 +8,7 @@ pub mod figure;
 pub mod legend;
 pub mod pair;
 pub mod panel;
+pub mod spotlight;
 pub mod text;
 
 pub use figure::{

@@ -10,6 +10,7 @@ mod compare;
 mod compare_window;
 mod demo;
 mod hardening;
+mod inspector;
 mod real_window;
 mod reference_outputs;
 mod regions;

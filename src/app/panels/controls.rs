@@ -244,6 +244,78 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
         );
     });
     ui.add(egui::Slider::new(&mut s.opacity, 0.0..=1.0).text("map opacity"));
+
+    ui.separator();
+    inspector(bench, s, ui);
+}
+
+/// The attention inspector: on or off, which block and head, and what it shows.
+fn inspector(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
+    ui.heading("Attention");
+    ui.checkbox(&mut s.inspecting, "Inspect attention (click a token)");
+    if !s.inspecting && bench.inspect.is_none() {
+        return;
+    }
+    let stage = bench.inspect.map(|q| q.stage);
+    let depth = stage
+        .and_then(|st| bench.weights.as_ref()?.model.config.depths.get(st).copied())
+        .unwrap_or(1);
+    let heads = stage
+        .and_then(|st| bench.weights.as_ref()?.model.config.heads.get(st).copied())
+        .unwrap_or(1);
+    ui.horizontal(|ui| {
+        labelled_drag(
+            ui,
+            "inspect block",
+            egui::DragValue::new(&mut s.inspect_block).range(0..=depth.saturating_sub(1)),
+        );
+    });
+    let l = ui.label("head");
+    egui::ComboBox::from_id_salt("inspect head")
+        .selected_text(
+            s.inspect_head
+                .map_or("mean over heads".into(), |h| format!("head {h}")),
+        )
+        .show_ui(ui, |ui| {
+            ui.selectable_value(&mut s.inspect_head, None, "mean over heads");
+            for h in 0..heads {
+                ui.selectable_value(&mut s.inspect_head, Some(h), format!("head {h}"));
+            }
+        })
+        .response
+        .labelled_by(l.id);
+    if let Some(h) = s.inspect_head.filter(|&h| h >= heads) {
+        ui.small(format!(
+            "head {h} is not in this stage (heads 0 to {})",
+            heads - 1
+        ));
+        s.inspect_head = None;
+    }
+    match (&bench.inspected, &bench.inspect_problem, bench.inspect) {
+        (Some(ins), _, _) => {
+            for line in crate::app::inspector::describe(
+                &ins.attention,
+                ins.query.stage,
+                ins.block,
+                ins.shifted,
+            ) {
+                ui.small(line);
+            }
+            ui.small(
+                "bright: where the query looks; veiled: little or no attention; crossed: \
+                 removed by the shift mask; hatched: padding",
+            );
+        }
+        (None, Some(p), _) => {
+            ui.colored_label(egui::Color32::from_rgb(230, 90, 70), p);
+        }
+        (None, None, Some(_)) => {
+            ui.small("computing the block's attention…");
+        }
+        (None, None, None) => {
+            ui.small("click a token in a stage picture or the lens");
+        }
+    }
 }
 
 /// A number field with a visible name that assistive tools (and the tests) find it by.

@@ -94,7 +94,19 @@ impl Lens {
             to_image: (1.0 / sx, 1.0 / sy),
         };
         // Drawing tools take the drag; picking drags a region, or pans where there is none.
-        out.extend(canvas.interact(&resp, &at, &bench.regions));
+        // With the inspector on, a click picks the query token instead.
+        let inspect_click =
+            bench.settings.inspecting && canvas.tool == Tool::Pick && resp.clicked();
+        match resp.interact_pointer_pos().filter(|_| inspect_click) {
+            Some(p) => out.extend(super::strip::inspect_action(
+                maps,
+                tex.key.focus,
+                rect,
+                canvas_px,
+                p,
+            )),
+            None => out.extend(canvas.interact(&resp, &at, &bench.regions)),
+        }
         if resp.dragged() && canvas.tool == Tool::Pick && !canvas.is_grabbing() {
             self.pan += resp.drag_delta();
         }
@@ -118,6 +130,19 @@ impl Lens {
             &bench.regions,
             Some(&bench.regions.highlight),
         );
+        if let Some(ins) = bench
+            .inspected
+            .as_ref()
+            .filter(|i| i.query.stage == tex.key.focus)
+        {
+            crate::app::inspector::paint_spotlight(
+                &painter,
+                rect,
+                canvas_px,
+                sg.stride,
+                &ins.attention,
+            );
+        }
         if !dense.is_empty() {
             painter.text(
                 area.left_top() + Vec2::new(6.0, 6.0),

@@ -6,6 +6,7 @@ use crate::analysis::compare::{DifferenceStage, PairView};
 use crate::analysis::PreparedStage;
 use crate::app::actions::Action;
 use crate::app::canvas::{CanvasTools, Placement, Tool};
+use crate::app::inspector::paint_spotlight;
 use crate::app::overlay::paint_overlays;
 use crate::app::pictures::PairTextures;
 use crate::app::state::Workbench;
@@ -127,6 +128,9 @@ struct Cell<'a> {
     title: String,
     /// The stage drawn (`None`: the image itself).
     stage: Option<usize>,
+    /// Whether this picture is of the checkpoint the attention inspector reads (B when
+    /// comparing): its spotlight is drawn here and clicks pick its query.
+    inspectable: bool,
     canvas_px: (f32, f32),
     size: Vec2,
 }
@@ -137,6 +141,23 @@ struct Frame<'a> {
     maps: &'a crate::app::pictures::PreparedMaps,
     overlays: Overlays,
     to_image: (f64, f64),
+}
+
+/// The inspector's query at screen point `p` of a picture of `stage`, if it is a real token.
+pub fn inspect_action(
+    maps: &crate::app::pictures::PreparedMaps,
+    stage: usize,
+    rect: egui::Rect,
+    canvas: (f32, f32),
+    p: egui::Pos2,
+) -> Option<Action> {
+    let sg = maps.outputs.geometry.stages.get(stage)?;
+    let (x, y) = to_input_px(rect, canvas, p);
+    if x < 0.0 || y < 0.0 {
+        return None;
+    }
+    let (row, col) = (y as usize / sg.stride, x as usize / sg.stride);
+    (row < sg.grid.0 && col < sg.grid.1).then_some(Action::InspectToken { stage, row, col })
 }
 
 /// One line under a comparison panel: what the colours span and on which scale.
@@ -172,7 +193,11 @@ impl StageStrip {
             pointer.set(to_input_px(resp.rect, c.canvas_px, p));
         }
         if let (true, Some(s), Tool::Pick) = (resp.clicked(), c.stage, canvas.tool) {
-            out.push(Action::FocusStage(s));
+            let inspect = f.bench.settings.inspecting && c.inspectable;
+            match resp.interact_pointer_pos().filter(|_| inspect) {
+                Some(p) => out.extend(inspect_action(f.maps, s, resp.rect, c.canvas_px, p)),
+                None => out.push(Action::FocusStage(s)),
+            }
         }
         let at = Placement {
             rect: resp.rect,
@@ -185,6 +210,13 @@ impl StageStrip {
             !paint_overlays(&painter, &g.stages[s], g.image, &f.overlays, resp.rect).is_empty()
         });
         canvas.paint(&painter, &at, &f.bench.regions, None);
+        if let (true, Some(ins)) = (c.inspectable, &f.bench.inspected) {
+            if c.stage.is_none_or(|s| s == ins.query.stage) {
+                if let Some(sg) = g.stages.get(ins.query.stage) {
+                    paint_spotlight(&painter, resp.rect, c.canvas_px, sg.stride, &ins.attention);
+                }
+            }
+        }
         crosshair(&painter, resp.rect, resp.rect, c.canvas_px, pointer.hover);
         dense
     }
@@ -275,6 +307,7 @@ impl StageStrip {
                             texture: t,
                             title,
                             stage,
+                            inspectable: true,
                             canvas_px,
                             size,
                         };
@@ -346,6 +379,7 @@ impl StageStrip {
                                         texture: &t.image,
                                         title: "image".into(),
                                         stage: None,
+                                        inspectable: true,
                                         canvas_px: canvases[0],
                                         size: fit(canvases[0]),
                                     };
@@ -385,6 +419,7 @@ impl StageStrip {
                                         texture: t,
                                         title,
                                         stage: Some(s),
+                                        inspectable: row == 1,
                                         canvas_px,
                                         size,
                                     };
