@@ -9,6 +9,7 @@ mod commands;
 mod compare;
 mod demo;
 mod hardening;
+mod padding;
 mod real_window;
 mod reference_outputs;
 mod regions;

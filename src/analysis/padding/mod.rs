@@ -32,7 +32,11 @@ pub use attention::{pad_attention_shares, pad_attention_stats, AttentionOnPaddin
 pub use orders::{order_disagreement, OrderDisagreement, OrderStats, ORDER_THRESHOLD};
 pub use profile::{border_profile, window_profile, ProfileBin};
 pub use sizes::{size_advice, SizeAdvice, StagePadding};
-pub use sweep::{pad_input, sweep_cosines, PaddingSensitivity};
+pub use sweep::{pad_input, sweep_cosines, PaddingSensitivity, MAX_PAD_PX};
+
+/// The caution the padding studies carry wherever they leave the program.
+pub const PADDING_CAUTION: &str = "These maps show how features depend on padding and \
+windows, not whether a prediction is right.";
 
 pub use crate::analysis::map::Variant;
 

@@ -5,8 +5,11 @@
 
 use crate::engine::geometry::{Geometry, ModelShape, Semantics};
 
+/// (height, width) in pixels.
+type Size = (usize, usize);
+
 /// Largest relative change of the aspect ratio (width / height) a suggested size may make.
-pub const ASPECT_TOLERANCE: f64 = 0.03;
+pub const ASPECT_TOLERANCE: f64 = 0.05;
 
 /// What one stage pads at a size.
 #[derive(Clone, Debug, PartialEq, Eq)]
@@ -139,7 +142,7 @@ pub fn size_advice(
     let unit = shape.patch << n.saturating_sub(1);
     let aspect = image.1 as f64 / image.0 as f64;
     let area = (image.0 * image.1) as f64;
-    let (mut down, mut up): (Option<(usize, usize)>, Option<(usize, usize)>) = (None, None);
+    let (mut down, mut up): (Option<Size>, Option<Size>) = (None, None);
     let key = |s: (usize, usize)| {
         let a = (s.0 * s.1) as f64;
         (
