@@ -152,6 +152,18 @@ impl SessionOptions {
     }
 }
 
+impl SessionOptions {
+    /// The files a run of `image` reads, named by the flag that gave them (`--weights`,
+    /// `--image`, `--config`): what [`crate::io::check_outputs`] keeps outputs apart from.
+    pub fn run_inputs<'a>(&'a self, image: &'a Path) -> Vec<(&'static str, &'a Path)> {
+        let mut v = vec![("--weights", self.weights.as_path()), ("--image", image)];
+        if let Some(c) = &self.config {
+            v.push(("--config", c.as_path()));
+        }
+        v
+    }
+}
+
 /// A loaded checkpoint with the settings of one run: the validated form of [`SessionOptions`].
 pub struct Session {
     pub options: SessionOptions,

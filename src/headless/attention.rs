@@ -70,13 +70,7 @@ pub fn check_block(depths: &[usize], stage: usize, block: usize) -> Result<()> {
 
 /// Run the image, keep the block's attention and write both tensors.
 pub fn run_attention(opts: &AttentionOptions) -> Result<AttentionOutcome> {
-    let mut inputs = vec![
-        ("--weights", opts.session.weights.as_path()),
-        ("--image", opts.image.as_path()),
-    ];
-    if let Some(c) = &opts.session.config {
-        inputs.push(("--config", c.as_path()));
-    }
+    let inputs = opts.session.run_inputs(&opts.image);
     crate::io::check_outputs(&inputs, &[("--out", opts.out.as_path())])?;
     let session = Session::open(&opts.session)?;
     check_block(&session.model.config.depths, opts.stage, opts.block)?;

@@ -75,13 +75,7 @@ pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
             "--stats/--csv need a scalar map (norm or channel:N); pca gives colours".into(),
         ));
     }
-    let mut inputs = vec![
-        ("--weights", opts.session.weights.as_path()),
-        ("--image", opts.image.as_path()),
-    ];
-    if let Some(c) = &opts.session.config {
-        inputs.push(("--config", c.as_path()));
-    }
+    let inputs = opts.session.run_inputs(&opts.image);
     let mut outputs = vec![("--out", opts.out.as_path())];
     if let Some(p) = &opts.stats {
         outputs.push(("--stats", p.as_path()));

@@ -244,13 +244,7 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
         SIZES_NAME,
     ];
     let paths: Vec<PathBuf> = names.iter().map(|n| opts.out.join(n)).collect();
-    let mut inputs = vec![
-        ("--weights", opts.session.weights.as_path()),
-        ("--image", opts.image.as_path()),
-    ];
-    if let Some(c) = &opts.session.config {
-        inputs.push(("--config", c.as_path()));
-    }
+    let inputs = opts.session.run_inputs(&opts.image);
     let outputs: Vec<(&str, &Path)> = paths.iter().map(|p| ("--out", p.as_path())).collect();
     crate::io::check_outputs(&inputs, &outputs)?;
     let _lock = crate::io::lock_folder(&opts.out)?;

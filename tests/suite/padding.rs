@@ -6,8 +6,8 @@
 //! (torch 2.15.0); the sweep, order and attention-share figures in `padding.json` are computed
 //! with numpy 2.4.6 from those libraries' own forward passes. Each check names its source.
 
-use crate::common::{fixtures, mullion};
-use candle_core::{DType, Device, Tensor};
+use crate::common::{fixtures, mullion, rel_diff_f64 as rel_diff};
+use candle_core::{Device, Tensor};
 use serde_json::Value;
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
@@ -46,24 +46,6 @@ fn flags(source: &str) -> Vec<&'static str> {
         ],
         _ => vec!["--pad-order", "pad-then-shift", "--small-stage", "clamp"],
     }
-}
-
-/// `max |got - want| / max |want|`.
-fn rel_diff(got: &Tensor, want: &Tensor) -> f64 {
-    let max_abs = |t: &Tensor| {
-        t.to_dtype(DType::F64)
-            .unwrap()
-            .abs()
-            .unwrap()
-            .flatten_all()
-            .unwrap()
-            .max(0)
-            .unwrap()
-            .to_scalar::<f64>()
-            .unwrap()
-    };
-    let d = (got.to_dtype(DType::F64).unwrap() - want.to_dtype(DType::F64).unwrap()).unwrap();
-    max_abs(&d) / max_abs(want).max(f64::MIN_POSITIVE)
 }
 
 fn close(got: f64, want: f64) -> bool {
@@ -380,4 +362,89 @@ fn bad_padding_and_attention_arguments() {
     let r = att("0", "0", &i);
     assert_eq!(r.code, 2, "{}", r.stderr);
     assert!(!o.exists());
+}
+
+/// The padding kinds go through the shared map preparation with the second pass they name
+/// (and are refused without it); `padding:8` is `1 - cosine` of the sweep, so its stage means
+/// give the sweep row timm 1.0.31 gave (see above).
+#[test]
+fn padding_kinds_in_the_shared_map_machinery() {
+    use mullion::analysis::padding::run_variant;
+    use mullion::analysis::{parse_map_kind, prepare_stage_pair, prepare_stages, ScaleSpec};
+    use mullion::engine::{ForwardOptions, Session, SessionOptions};
+    let session = Session::open(&SessionOptions::new(weights())).unwrap();
+    let x = session.load_input(&image()).unwrap();
+    let base = session
+        .forward_input(&image(), &x, &ForwardOptions::default())
+        .unwrap();
+    let spec = ScaleSpec::default();
+    let r = refs();
+    for id in ["padding:8", "pad-order", "pad-attention:1"] {
+        let kind = parse_map_kind(id).unwrap();
+        assert!(prepare_stages(&base, kind.as_ref(), &spec).is_err(), "{id}");
+        let v = kind.variant().expect("a padding kind names its pass");
+        let second = run_variant(&session.model, &x, base.geometry.semantics, v).unwrap();
+        let (raw, prepared) =
+            prepare_stage_pair(&base, Some(&second), kind.as_ref(), &spec).unwrap();
+        assert_eq!(prepared.len(), 4);
+        for (s, m) in raw.iter().enumerate() {
+            assert_eq!(m.dims(), base.geometry.stages[s].grid, "{id} stage {s}");
+        }
+        if id == "padding:8" {
+            for (s, m) in raw.iter().enumerate() {
+                let v = m.scalars().unwrap();
+                let mean = 1.0 - v.iter().map(|&d| d as f64).sum::<f64>() / v.len() as f64;
+                let want = r["sweep"]["timm"]
+                    .as_array()
+                    .unwrap()
+                    .iter()
+                    .find(|w| w["pad_px"] == 8 && w["stage"] == s)
+                    .unwrap()["mean_cosine"]
+                    .as_f64()
+                    .unwrap();
+                assert!(close(mean, want), "stage {s}: {mean} vs {want}");
+            }
+        }
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("f.png");
+    let (w, i) = (weights(), image());
+    let run = mullion(&[
+        "figure",
+        "--weights",
+        s(&w),
+        "--image",
+        s(&i),
+        "--out",
+        s(&out),
+        "--map",
+        "padding:8",
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    assert!(image::open(&out).is_ok());
+}
+
+/// The sweep comparison can fail: black pixels added *before* normalisation (not zeros after
+/// it) give other cosines than timm's zero-padded passes.
+#[test]
+fn padding_before_normalisation_is_told_apart() {
+    use mullion::analysis::padding::sweep_cosines;
+    use mullion::engine::input::{load_image, normalise, Normalisation};
+    use mullion::engine::{ForwardOptions, Session, SessionOptions};
+    let session = Session::open(&SessionOptions::new(weights())).unwrap();
+    let img = load_image(image()).unwrap();
+    let mut black = image::RgbImage::new(img.width() + 8, img.height() + 8);
+    image::imageops::replace(&mut black, &img, 0, 0);
+    let run = |im: &image::RgbImage| {
+        let x = normalise(im, &Normalisation::IMAGENET).unwrap();
+        session
+            .forward_input(&image(), &x, &ForwardOptions::default())
+            .unwrap()
+    };
+    let (base, padded) = (run(&img), run(&black));
+    let (_, cos) = sweep_cosines(&base, &padded, 0).unwrap();
+    let mean = cos.iter().sum::<f64>() / cos.len() as f64;
+    let want = refs()["sweep"]["timm"][4]["mean_cosine"].as_f64().unwrap();
+    assert_eq!(refs()["sweep"]["timm"][4]["pad_px"], 8);
+    assert!(!close(mean, want), "{mean} vs {want}");
 }
