@@ -91,11 +91,15 @@ pub fn check_pads(pads: &[usize]) -> Result<()> {
     Ok(())
 }
 
+/// A number for the CSV files: plain decimals, exponent form for very small or large values
+/// (the shortest form that reads back to the same f64 either way).
 fn csv_f64(v: f64) -> String {
-    if v.is_finite() {
+    if !v.is_finite() {
+        "inf".into()
+    } else if v == 0.0 || (1e-4..1e15).contains(&v.abs()) {
         format!("{v}")
     } else {
-        "inf".into()
+        format!("{v:e}")
     }
 }
 
