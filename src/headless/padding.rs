@@ -10,12 +10,13 @@
 //! `figures/<stem>.<map>.figure.png`. The folder is locked for the run.
 
 use crate::analysis::padding::{
-    border_profile, order_disagreement, orders::ordered, pad_attention_stats, pad_input,
-    size_advice, sweep_cosines, variant_options, window_profile, AttentionOnPadding,
+    all_attention_bytes, border_profile, order_disagreement, orders::ordered, pad_attention_stats,
+    pad_input, size_advice, sweep_cosines, variant_options, window_profile, AttentionOnPadding,
     OrderDisagreement, PadShareStats, PaddingSensitivity, Variant, MAX_PAD_PX, PADDING_CAUTION,
 };
 use crate::analysis::{prepare_stage_pair, stage_tokens, Colormap, Map, MapKind, ScaleSpec};
 use crate::engine::input::{load_image, MAX_SIDE};
+use crate::engine::model::check_budget;
 use crate::engine::{ForwardOptions, Session, SessionOptions, StageOutputs};
 use crate::error::{Error, Result};
 use crate::io::write_text_atomic;
@@ -258,7 +259,25 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
     }
     let session = Session::open(&opts.session)?;
     let x = session.load_input(&opts.image)?;
-    // The image's own pass keeps every block's attention: the attention study needs them.
+    // The image's own pass keeps every block's attention (the attention study needs them all):
+    // count them on top of the pass itself before running it.
+    let (_, h, w) = x.dims3()?;
+    let model = &session.model;
+    let taps = all_attention_bytes(
+        &model.geometry((h, w), Some(session.semantics)),
+        &model.config.heads,
+    );
+    let need = model
+        .estimate_bytes((h, w), Some(session.semantics))
+        .zip(taps)
+        .and_then(|(a, b)| a.checked_add(b));
+    check_budget(need, (h, w), session.memory_limit).map_err(|e| match e {
+        Error::Limit(m) => Error::Limit(format!(
+            "{}: {m} (the padding study keeps every block's attention weights)",
+            opts.image.display()
+        )),
+        other => other,
+    })?;
     let base = session.forward_input(
         &opts.image,
         &x,

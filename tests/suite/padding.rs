@@ -448,3 +448,38 @@ fn padding_before_normalisation_is_told_apart() {
     assert_eq!(refs()["sweep"]["timm"][4]["pad_px"], 8);
     assert!(!close(mean, want), "{mean} vs {want}");
 }
+
+/// A second run on a folder a run is writing to is refused at once (exit 1), and a memory
+/// limit too small for the study is a runtime failure naming the image.
+#[test]
+fn padding_locks_its_folder_and_keeps_to_the_memory_limit() {
+    let tmp = tempfile::tempdir().unwrap();
+    let (w, i) = (weights(), image());
+    let _lock = mullion::io::lock_folder(tmp.path()).unwrap();
+    let r = mullion(&[
+        "padding",
+        "--weights",
+        s(&w),
+        "--image",
+        s(&i),
+        "--out",
+        s(tmp.path()),
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("another Mullion run"), "{}", r.stderr);
+    assert!(!tmp.path().join("sweep.csv").exists());
+    let other = tmp.path().join("o");
+    let r = mullion(&[
+        "padding",
+        "--weights",
+        s(&w),
+        "--image",
+        s(&i),
+        "--out",
+        s(&other),
+        "--max-memory-gb",
+        "0.01",
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("input.png"), "{}", r.stderr);
+}

@@ -4,7 +4,7 @@
 //! (`BlockGeometry::gather_index`); queries that are padding themselves are left out.
 
 use crate::analysis::map::{Map, MapKind, Variant};
-use crate::engine::geometry::BlockGeometry;
+use crate::engine::geometry::{BlockGeometry, Geometry};
 use crate::engine::StageOutputs;
 use crate::error::{Error, Result};
 use candle_core::Tensor;
@@ -47,6 +47,24 @@ pub fn pad_attention_shares(probs: &Tensor, block: &BlockGeometry) -> Result<Vec
         }
     }
     Ok(share)
+}
+
+/// Bytes the attention weights of every block take when a pass keeps them all
+/// (`ForwardOptions::attention_all`): f32 `[windows, heads, N, N]` per block. `None` when too
+/// many to count.
+pub fn all_attention_bytes(geometry: &Geometry, heads: &[usize]) -> Option<u64> {
+    let mut total = 0u64;
+    for (sg, &h) in geometry.stages.iter().zip(heads) {
+        for b in &sg.blocks {
+            let n = b.window_area() as u64;
+            let bytes = (b.n_windows() as u64)
+                .checked_mul(h as u64)?
+                .checked_mul(n.checked_mul(n)?)?
+                .checked_mul(4)?;
+            total = total.checked_add(bytes)?;
+        }
+    }
+    Some(total)
 }
 
 /// Mean and largest share over a block's real query tokens.
@@ -144,6 +162,27 @@ impl MapKind for AttentionOnPadding {
 mod tests {
     use super::*;
     use crate::engine::geometry::{AxisPlan, PadOrder};
+
+    // Swin-T at 224: per block windows x heads x 49^2 x 4 bytes; windows 64, 16, 4, 1 and
+    // heads 3, 6, 12, 24 over 2, 2, 6, 2 blocks: 2401 * 4 * (384 + 192 + 288 + 48).
+    #[test]
+    fn attention_bytes_of_swin_t_at_224() {
+        use crate::engine::geometry::{ModelShape, Semantics, SmallStage};
+        let shape = ModelShape {
+            patch: 4,
+            depths: vec![2, 2, 6, 2],
+            window: (7, 7),
+        };
+        let sem = Semantics {
+            pad_order: PadOrder::PadThenShift,
+            small_stage: SmallStage::Clamp,
+        };
+        let g = Geometry::new((224, 224), &shape, sem);
+        assert_eq!(
+            all_attention_bytes(&g, &[3, 6, 12, 24]),
+            Some(2401 * 4 * 912)
+        );
+    }
 
     // A 1x3 grid in one window of 1x4: position 3 is padding. With uniform weights 1/4 every
     // real query gives 1/4 to the pad key; with one head giving 0.5 and the other 0, the mean

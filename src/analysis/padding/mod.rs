@@ -28,7 +28,10 @@ pub mod profile;
 pub mod sizes;
 pub mod sweep;
 
-pub use attention::{pad_attention_shares, pad_attention_stats, AttentionOnPadding, PadShareStats};
+pub use attention::{
+    all_attention_bytes, pad_attention_shares, pad_attention_stats, AttentionOnPadding,
+    PadShareStats,
+};
 pub use orders::{order_disagreement, OrderDisagreement, OrderStats, ORDER_THRESHOLD};
 pub use profile::{border_profile, window_profile, ProfileBin};
 pub use sizes::{size_advice, SizeAdvice, StagePadding};
