@@ -483,3 +483,47 @@ fn padding_locks_its_folder_and_keeps_to_the_memory_limit() {
     assert_eq!(r.code, 1, "{}", r.stderr);
     assert!(r.stderr.contains("input.png"), "{}", r.stderr);
 }
+
+/// On a demo tray whose first stage needs no window padding (333x250: 63x84 tokens, windows of
+/// 7), the two pad orders agree exactly there and part at the stages that pad; the sweep keeps
+/// one row per pad and stage, cosines within [-1, 1].
+#[test]
+fn pad_orders_agree_where_nothing_pads() {
+    let tmp = tempfile::tempdir().unwrap();
+    let (w, i) = (
+        crate::common::sample("demo.safetensors"),
+        crate::common::sample("tray-01-333x250.png"),
+    );
+    let run = mullion(&[
+        "padding",
+        "--weights",
+        s(&w),
+        "--image",
+        s(&i),
+        "--out",
+        s(tmp.path()),
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    let orders = read_csv(&tmp.path().join("orders.csv"));
+    assert_eq!(
+        (
+            num(&orders[0], "max_rel_diff"),
+            num(&orders[0], "share_over_1e-3")
+        ),
+        (0.0, 0.0)
+    );
+    assert!(orders[1..].iter().all(|r| num(r, "max_rel_diff") > 1e-3));
+    let sweep = read_csv(&tmp.path().join("sweep.csv"));
+    assert_eq!(sweep.len(), 4 * 4);
+    for r in &sweep {
+        let (m, lo) = (num(r, "mean_cosine"), num(r, "min_cosine"));
+        assert!((-1.0..=1.0).contains(&lo) && lo <= m && m <= 1.0, "{r:?}");
+    }
+    let sizes = std::fs::read_to_string(tmp.path().join("sizes.txt")).unwrap();
+    assert!(
+        sizes.contains(
+            "stage 0: grid 63x84 (rows x cols), window 7x7, padded to 63x84 (+0 rows, +0 cols)"
+        ),
+        "{sizes}"
+    );
+}

@@ -209,6 +209,44 @@ mod tests {
         assert_eq!((a.down, a.up), (Some((224, 224)), Some((224, 224))));
     }
 
+    // Whatever the size, a suggestion needs no padding, keeps the aspect within the tolerance
+    // and lies on its side of the area.
+    #[test]
+    fn suggestions_need_no_padding() {
+        for sem in [
+            sem(),
+            Semantics {
+                pad_order: PadOrder::ShiftThenPad,
+                small_stage: SmallStage::ClampPerAxis,
+            },
+        ] {
+            for image in [
+                (250, 333),
+                (160, 97),
+                (427, 640),
+                (375, 500),
+                (800, 1216),
+                (97, 97),
+            ] {
+                let a = size_advice(image, &tiny(), sem, 4096);
+                let area = image.0 * image.1;
+                let aspect = image.1 as f64 / image.0 as f64;
+                for (s, down) in [(a.down, true), (a.up, false)] {
+                    let Some(s) = s else { continue };
+                    assert!(!pads(&Geometry::new(s, &tiny(), sem)), "{image:?} -> {s:?}");
+                    let ratio = (s.1 as f64 / s.0 as f64) / aspect - 1.0;
+                    assert!(ratio.abs() <= ASPECT_TOLERANCE, "{image:?} -> {s:?}");
+                    assert!(if down {
+                        s.0 * s.1 <= area
+                    } else {
+                        s.0 * s.1 >= area
+                    });
+                }
+                assert!(a.up.is_some(), "{image:?}");
+            }
+        }
+    }
+
     // 230x230: input pad 2; grids 58 (pad to 63), 29 (odd: merging pads; to 35), 15, 8.
     // With patch 4, four stages and window 7 clamped at the last stage, a side without padding
     // is 32 * k with 8k, 4k, 2k, k each a window multiple or clamped: 224 (k = 7) and 448
