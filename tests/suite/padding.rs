@@ -358,6 +358,20 @@ fn bad_padding_and_attention_arguments() {
     assert!(r.stderr.contains("blocks 0 to 3"), "{}", r.stderr);
     let r = att("0", "-1", &o);
     assert_eq!(r.code, 2, "{}", r.stderr);
+    // The report runs one pass per image: a padding kind is refused before any work.
+    let r = mullion(&[
+        "report",
+        "--weights",
+        s(&w),
+        "--images",
+        s(&dir()),
+        "--out",
+        s(&tmp.path().join("r")),
+        "--map",
+        "padding:8",
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("second pass"), "{}", r.stderr);
     // The output may not be one of the inputs.
     let r = att("0", "0", &i);
     assert_eq!(r.code, 2, "{}", r.stderr);

@@ -154,7 +154,11 @@ impl MapKind for AttentionOnPadding {
         b: Option<&StageOutputs>,
         stage: usize,
     ) -> Result<Map> {
-        self.compute(b.unwrap_or(a), stage)
+        // Whichever pass kept the attention weights.
+        match b {
+            Some(b) if a.attentions.is_empty() => self.compute(b, stage),
+            _ => self.compute(a, stage),
+        }
     }
 }
 
