@@ -2,7 +2,7 @@
 //! padding sweep, the pad-order disagreement, attention on padding, profiles and size advice.
 
 use super::options::{parse_pads, Pads, RunArgs};
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::headless::padding::{run_padding, PaddingOptions, DEFAULT_PADS};
 use clap::Args;
 use std::path::PathBuf;
@@ -40,6 +40,18 @@ pub fn run(args: &PaddingArgs) -> Result<()> {
     let o = run_padding(&opts)?;
     for f in &o.files {
         eprintln!("wrote {}", f.display());
+    }
+    if !o.skipped.is_empty() {
+        let pads: Vec<String> = o.skipped.iter().map(|(p, _)| p.to_string()).collect();
+        return Err(Error::bad_file(
+            &args.image,
+            format!(
+                "the padded pass for {} px could not run ({}); its sweep rows are left empty, \
+                 everything else is written",
+                pads.join(", "),
+                o.skipped[0].1
+            ),
+        ));
     }
     Ok(())
 }

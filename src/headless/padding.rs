@@ -49,8 +49,9 @@ pub struct PaddingOptions {
 pub struct SweepRow {
     pub pad_px: usize,
     pub stage: usize,
-    pub mean_cosine: f64,
-    pub min_cosine: f64,
+    /// `None` when the padded pass could not run (see [`PaddingOutcome::skipped`]).
+    pub mean_cosine: Option<f64>,
+    pub min_cosine: Option<f64>,
     pub tokens: usize,
 }
 
@@ -69,6 +70,9 @@ pub struct PaddingOutcome {
     pub orders: Vec<OrderRow>,
     pub attention: Vec<PadShareStats>,
     pub files: Vec<PathBuf>,
+    /// Pads whose padded pass could not run, with the reason (e.g. a bias table made for a
+    /// clamped window that the larger input no longer clamps).
+    pub skipped: Vec<(usize, String)>,
 }
 
 /// Refuse pads that are not a usable list: empty, repeated, or so large the input exceeds
@@ -113,8 +117,8 @@ pub fn sweep_csv(rows: &[SweepRow]) -> String {
             "{},{},{},{},{}",
             r.pad_px,
             r.stage,
-            csv_f64(r.mean_cosine),
-            csv_f64(r.min_cosine),
+            r.mean_cosine.map_or(String::new(), csv_f64),
+            r.min_cosine.map_or(String::new(), csv_f64),
             r.tokens
         );
     }
@@ -298,16 +302,37 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
 
     // The sweep: one padded pass per pad, compared over the unpadded grid.
     let mut sweep = Vec::new();
-    let largest = opts.pads.iter().copied().max().unwrap_or(0);
+    let mut skipped = Vec::new();
+    let mut largest_maps: Option<(String, Vec<Map>)> = None;
+    let mut largest_done = None;
     for &p in &opts.pads {
         let padded = if p == 0 {
             None
         } else {
-            Some(session.forward_input(
+            // A pad the checkpoint cannot run (a clamped window's bias table, the memory
+            // limit) leaves its rows empty; the other pads and studies still run.
+            match session.forward_input(
                 &opts.image,
                 &pad_input(&x, p, p)?,
                 &ForwardOptions::default(),
-            )?)
+            ) {
+                Ok(out) => Some(out),
+                Err(Error::Cancelled) => return Err(Error::Cancelled),
+                Err(e) => {
+                    eprintln!("pad {p} px: not computed: {e}");
+                    skipped.push((p, e.to_string()));
+                    for s in 0..n {
+                        sweep.push(SweepRow {
+                            pad_px: p,
+                            stage: s,
+                            mean_cosine: None,
+                            min_cosine: None,
+                            tokens: base.geometry.stages[s].grid.0 * base.geometry.stages[s].grid.1,
+                        });
+                    }
+                    continue;
+                }
+            }
         };
         let other = padded.as_ref().unwrap_or(&base);
         for s in 0..n {
@@ -315,18 +340,23 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
             sweep.push(SweepRow {
                 pad_px: p,
                 stage: s,
-                mean_cosine: cos.iter().sum::<f64>() / cos.len().max(1) as f64,
-                min_cosine: cos.iter().copied().fold(f64::INFINITY, f64::min),
+                mean_cosine: Some(cos.iter().sum::<f64>() / cos.len().max(1) as f64),
+                min_cosine: Some(cos.iter().copied().fold(f64::INFINITY, f64::min)),
                 tokens: cos.len(),
             });
         }
+        if padded.is_some() && largest_done.is_none_or(|l| p > l) {
+            largest_done = Some(p);
+        }
         if let Some(padded) = &padded {
             let kind = PaddingSensitivity::new(p)?;
-            if p == largest {
-                let maps: Vec<Map> = (0..n)
-                    .map(|s| kind.compute_pair(&base, Some(padded), s))
-                    .collect::<Result<_>>()?;
-                profile_rows(&mut profile, &kind.id(), &maps, &base)?;
+            if largest_done == Some(p) {
+                largest_maps = Some((
+                    kind.id(),
+                    (0..n)
+                        .map(|s| kind.compute_pair(&base, Some(padded), s))
+                        .collect::<Result<Vec<Map>>>()?,
+                ));
             }
             figs.add(
                 &base,
@@ -335,6 +365,10 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
                 format!("{p} zero rows (bottom) and columns (right) added after normalisation"),
             )?;
         }
+    }
+
+    if let Some((id, maps)) = &largest_maps {
+        profile_rows(&mut profile, id, maps, &base)?;
     }
 
     // The two pad orders, the small-stage rule kept.
@@ -413,5 +447,6 @@ pub fn run_padding(opts: &PaddingOptions) -> Result<PaddingOutcome> {
         orders,
         attention,
         files,
+        skipped,
     })
 }

@@ -541,3 +541,45 @@ fn pad_orders_agree_where_nothing_pads() {
         "{sizes}"
     );
 }
+
+/// A checkpoint whose bias tables were made for a clamped window (timm_odd: 4x5 at stage 3)
+/// cannot run the larger padded input: those sweep rows stay empty, the rest is written, and
+/// the run fails (exit 1) naming the image, the pad and the reason.
+#[test]
+fn a_pad_the_checkpoint_cannot_run_is_reported() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = fixtures().join("timm_odd");
+    let (w, i) = (d.join("weights.safetensors"), d.join("input.png"));
+    let r = mullion(&[
+        "padding",
+        "--weights",
+        s(&w),
+        "--image",
+        s(&i),
+        "--out",
+        s(tmp.path()),
+        "--pads",
+        "0,8,16",
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("input.png") && r.stderr.contains("16 px"),
+        "{}",
+        r.stderr
+    );
+    assert!(r.stderr.contains("bias table"), "{}", r.stderr);
+    let sweep = read_csv(&tmp.path().join("sweep.csv"));
+    assert_eq!(sweep.len(), 12);
+    for row in &sweep {
+        let empty = row["mean_cosine"].is_empty();
+        assert_eq!(empty, row["pad_px"] == "16", "{row:?}");
+    }
+    for f in [
+        "orders.csv",
+        "pad_attention.csv",
+        "profile.csv",
+        "sizes.txt",
+    ] {
+        assert!(tmp.path().join(f).is_file(), "{f}");
+    }
+}
