@@ -11,10 +11,12 @@
 //! annotation             shapes and clipping, the sidecar file, undo history, palette
 //! analysis               map kinds, PCA, scaling, colour maps, statistics, map preparation,
 //!                        region statistics, two-checkpoint comparison (CKA, cosine, the
-//!                        difference map, weight drift)
+//!                        difference map, weight drift), padding studies (sweep, pad order,
+//!                        attention on padding, profiles, size advice)
 //! render                 panels, legends, text, composed figures
 //! headless               one image's figure, the report over a folder, the comparison of
-//!                        two checkpoints, merging split runs
+//!                        two checkpoints, merging split runs, the padding study of one
+//!                        image, one block's attention weights
 //! demo                   the seedling-tray generator, its labels, demo training
 //!                        (uses only the foundation, engine and annotation)
 //! app                    the window

@@ -103,6 +103,9 @@ pub fn parse_map_kind(s: &str) -> Result<Box<dyn MapKind>> {
         "norm" => Ok(Box::new(TokenNorm)),
         "pca" => Ok(Box::new(Pca)),
         "difference" => Ok(Box::new(super::compare::TokenDifference)),
+        _ if super::padding::parse_padding_kind(s).is_some() => {
+            super::padding::parse_padding_kind(s).expect("checked")
+        }
         _ => match s.strip_prefix("channel:") {
             Some(n) => n
                 .trim()
@@ -112,7 +115,7 @@ pub fn parse_map_kind(s: &str) -> Result<Box<dyn MapKind>> {
                     Error::BadArgument(format!("map '{s}': the channel must be a whole number"))
                 }),
             None => Err(Error::BadArgument(format!(
-                "map '{s}': expected norm, channel:N or pca (or difference, which compares two checkpoints)"
+                "map '{s}': expected norm, channel:N or pca (or difference, which compares two checkpoints, or the padding studies padding:P, pad-order, pad-attention:B)"
             ))),
         },
     }

@@ -42,6 +42,19 @@ impl Map {
     }
 }
 
+/// How the second forward pass a kind needs differs from the image's own pass, for kinds that
+/// compare a pass of the *same* checkpoint with a changed one (see `analysis::padding`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Variant {
+    /// `rows` zero rows at the bottom and `cols` zero columns at the right of the normalised
+    /// input (the zeros the model's own padding adds).
+    PaddedInput { rows: usize, cols: usize },
+    /// The other pad order, the small-stage rule kept.
+    OtherPadOrder,
+    /// The same input and semantics, keeping every block's attention weights.
+    Attention,
+}
+
 /// A way of looking at a stage: one value or colour per token.
 pub trait MapKind: Send + Sync {
     /// Short machine name, as the command line spells it (`norm`, `channel:12`, `pca`).
@@ -54,8 +67,13 @@ pub trait MapKind: Send + Sync {
     fn needs_pair(&self) -> bool {
         false
     }
+    /// The second pass of the same checkpoint this kind needs, if any. Such a kind gets that
+    /// pass as `b` in [`MapKind::compute_pair`]; `analysis::padding::run_variant` runs it.
+    fn variant(&self) -> Option<Variant> {
+        None
+    }
     /// The map of `stage` from the forward pass `a` and, for kinds that compare two
-    /// checkpoints, the pass `b` of the same image through the second one. Kinds of one pass
+    /// checkpoints (or a pass with its [`MapKind::variant`]), the pass `b` of the same image through the second one. Kinds of one pass
     /// ignore `b`.
     fn compute_pair(
         &self,

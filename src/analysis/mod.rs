@@ -5,7 +5,9 @@
 //! Every kind implements [`MapKind`], so new kinds drop in beside the ones here without touching
 //! the renderer: it only sees a [`Map`]. Kinds that compare two checkpoints (the difference map
 //! in `compare/`) get the second forward pass through [`MapKind::compute_pair`]; `compare/` also
-//! holds linear CKA, per-token cosine and weight drift.
+//! holds linear CKA, per-token cosine and weight drift. Kinds that compare the image's pass
+//! with a changed pass of the same checkpoint (padding sensitivity, pad-order disagreement,
+//! attention on padding, in `padding/`) name that pass with [`MapKind::variant`].
 //! Depends on the foundation, the engine and annotation.
 
 pub mod colormap;
@@ -14,6 +16,7 @@ pub mod compare;
 pub mod inspect;
 pub mod kinds;
 pub mod map;
+pub mod padding;
 pub mod pca;
 pub mod prepare;
 pub mod region_stats;
@@ -27,7 +30,8 @@ pub use compare::TokenDifference;
 pub use kinds::{
     parse_map_kind, rank_channels, rank_token_channels, token_norm, Channel, TokenNorm,
 };
-pub use map::{stage_tokens, Map, MapKind, Tokens};
+pub use map::{stage_tokens, Map, MapKind, Tokens, Variant};
+pub use padding::{AttentionOnPadding, OrderDisagreement, PaddingSensitivity};
 pub use pca::{fit_pca, Pca, PcaFit};
 pub use prepare::{prepare_stage_pair, prepare_stages, PreparedStage};
 pub use region_stats::{region_stats, rows_csv, token_weights, RegionStats, INSIDE_WEIGHT};

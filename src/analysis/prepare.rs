@@ -47,6 +47,12 @@ pub fn prepare_stage_pair(
             kind.id()
         )));
     }
+    if let (Some(v), None) = (kind.variant(), other) {
+        return Err(crate::error::Error::BadArgument(format!(
+            "the map '{}' needs a second pass of the same checkpoint ({v:?}); run it first",
+            kind.id()
+        )));
+    }
     let n = out.stages.len();
     if kind.id() == "pca" {
         let mut raw = Vec::with_capacity(n);

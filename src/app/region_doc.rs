@@ -6,7 +6,6 @@
 //! while the new ones are computed.
 
 use super::actions::RegionEdit;
-use super::loading::Wake;
 use super::pictures::PreparedMaps;
 use crate::analysis::{region_stats, token_weights, RegionStats, INSIDE_WEIGHT};
 use crate::annotation::{self, Edits, Shape, Sidecar};
@@ -294,7 +293,7 @@ impl RegionDoc {
         &mut self,
         maps: Option<&Arc<PreparedMaps>>,
         lens_stage: usize,
-        wake: Wake,
+        wake: Option<Box<dyn Fn() + Send>>,
     ) -> Option<String> {
         let (Some(maps), Some(sc)) = (maps, &self.sidecar) else {
             self.stats.clear();

@@ -4,6 +4,7 @@
 //! Exit status: 0 done, 1 runtime failure (the message names the file and the problem), 2 bad
 //! usage (clap's own errors, and arguments that parse but do not fit).
 
+pub mod attention;
 pub mod bench;
 pub mod compare;
 pub mod features;
@@ -11,6 +12,7 @@ pub mod figure;
 pub mod inspect;
 pub mod merge;
 pub mod options;
+pub mod padding;
 pub mod report;
 pub mod sample_data;
 pub mod summary;
@@ -47,6 +49,12 @@ pub enum Command {
     Report(report::ReportArgs),
     /// Compare two checkpoints on the same images: CKA and cosine per stage, weight drift.
     Compare(compare::CompareArgs),
+    /// Measure how one image's features depend on padding and window seams: padding sweep,
+    /// pad-order disagreement, attention on padding, profiles, size advice.
+    Padding(padding::PaddingArgs),
+    /// Write one block's attention weights of one image (per window and head) with the grid
+    /// position of every window token.
+    Attention(attention::AttentionArgs),
     /// Join the shard folders of a split report or comparison (--shard K/N) into one.
     Merge(merge::MergeArgs),
     /// Open the window on the given images or folders.
@@ -69,6 +77,8 @@ pub fn run(cli: &Cli) -> Result<()> {
         Some(Command::Figure(a)) => figure::run(a),
         Some(Command::Report(a)) => report::run(a),
         Some(Command::Compare(a)) => compare::run(a),
+        Some(Command::Padding(a)) => padding::run(a),
+        Some(Command::Attention(a)) => attention::run(a),
         Some(Command::Merge(a)) => merge::run(a),
         Some(Command::Open(a)) => window::open(a),
         Some(Command::SampleData(a)) => sample_data::run(a),

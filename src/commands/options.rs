@@ -191,6 +191,35 @@ pub fn parse_shard(s: &str) -> std::result::Result<crate::headless::Shard, Strin
     crate::headless::Shard::new(k, n).map_err(|e| format!("'{s}': {e}"))
 }
 
+/// The pads of a padding sweep, in pixels.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Pads(pub Vec<usize>);
+
+/// `P,P,...`: distinct non-negative whole numbers of pixels, each at most
+/// [`crate::analysis::padding::MAX_PAD_PX`].
+pub fn parse_pads(s: &str) -> std::result::Result<Pads, String> {
+    use crate::analysis::padding::MAX_PAD_PX;
+    let mut out: Vec<usize> = Vec::new();
+    for part in s.split(',') {
+        let p: usize = part.trim().parse().map_err(|_| {
+            format!(
+                "'{s}': expected a comma-separated list of non-negative whole numbers of \
+                 pixels, e.g. 0,8,16,32"
+            )
+        })?;
+        if p > MAX_PAD_PX {
+            return Err(format!(
+                "'{s}': {p} pixels is more than the {MAX_PAD_PX} allowed"
+            ));
+        }
+        if out.contains(&p) {
+            return Err(format!("'{s}': {p} is given twice"));
+        }
+        out.push(p);
+    }
+    Ok(Pads(out))
+}
+
 /// Largest memory limit accepted, in GB.
 pub const MAX_MEMORY_GB: f64 = 1e6;
 

@@ -68,6 +68,9 @@ pub struct ForwardOptions {
     pub final_norm: bool,
     /// Keep the attention weights of block (stage, block).
     pub attention_of: Option<(usize, usize)>,
+    /// Keep the attention weights of every block (in [`StageOutputs::attentions`]); studies of
+    /// where attention goes need all of them from one pass.
+    pub attention_all: bool,
 }
 
 /// Attention weights of one block: `[windows, heads, N, N]`.
@@ -90,6 +93,8 @@ pub struct StageOutputs {
     /// The final norm applied to the last stage (when asked and present).
     pub final_norm: Option<Tensor>,
     pub attention: Option<AttentionTap>,
+    /// Every block's attention weights, stage by stage, when [`ForwardOptions::attention_all`].
+    pub attentions: Vec<AttentionTap>,
 }
 
 impl Backbone {
@@ -313,6 +318,7 @@ impl Backbone {
         let mut grid = (eh, ew);
         let mut outs = Vec::with_capacity(self.stages.len());
         let mut attention = None;
+        let mut attentions = Vec::new();
         for (i, (stage, sg)) in self.stages.iter().zip(&geometry.stages).enumerate() {
             if let Some(m) = &stage.merge {
                 let (y, g) = m.forward(&x, grid)?;
@@ -327,7 +333,7 @@ impl Backbone {
             }
             debug_assert_eq!(grid, sg.grid);
             for (j, (block, bg)) in stage.blocks.iter().zip(&sg.blocks).enumerate() {
-                let keep = opts.attention_of == Some((i, j));
+                let keep = opts.attention_all || opts.attention_of == Some((i, j));
                 let (y, attn) = block.forward(&x, bg, keep)?;
                 x = y;
                 check_finite(&x, || {
@@ -337,11 +343,20 @@ impl Backbone {
                     )
                 })?;
                 if let Some(weights) = attn {
-                    attention = Some(AttentionTap {
-                        stage: i,
-                        block: j,
-                        weights,
-                    });
+                    if opts.attention_of == Some((i, j)) {
+                        attention = Some(AttentionTap {
+                            stage: i,
+                            block: j,
+                            weights: weights.clone(),
+                        });
+                    }
+                    if opts.attention_all {
+                        attentions.push(AttentionTap {
+                            stage: i,
+                            block: j,
+                            weights,
+                        });
+                    }
                 }
                 done += 1;
                 ctl.step(Progress {
@@ -385,6 +400,7 @@ impl Backbone {
             stage_norms,
             final_norm,
             attention,
+            attentions,
         })
     }
 }

@@ -152,6 +152,18 @@ impl SessionOptions {
     }
 }
 
+impl SessionOptions {
+    /// The files a run of `image` reads, named by the flag that gave them (`--weights`,
+    /// `--image`, `--config`): what [`crate::io::check_outputs`] keeps outputs apart from.
+    pub fn run_inputs<'a>(&'a self, image: &'a Path) -> Vec<(&'static str, &'a Path)> {
+        let mut v = vec![("--weights", self.weights.as_path()), ("--image", image)];
+        if let Some(c) = &self.config {
+            v.push(("--config", c.as_path()));
+        }
+        v
+    }
+}
+
 /// A loaded checkpoint with the settings of one run: the validated form of [`SessionOptions`].
 pub struct Session {
     pub options: SessionOptions,
@@ -213,6 +225,19 @@ impl Session {
         stage_norms: bool,
         final_norm: bool,
     ) -> Result<StageOutputs> {
+        let x = self.load_input(path)?;
+        let opts = ForwardOptions {
+            semantics: Some(self.semantics),
+            stage_norms,
+            final_norm,
+            ..ForwardOptions::default()
+        };
+        self.forward_input(path, &x, &opts)
+    }
+
+    /// Decode and normalise one image (`[chans, H, W]`, f32), after checking from its header
+    /// that a run at its size fits the memory limit.
+    pub fn load_input(&self, path: &Path) -> Result<candle_core::Tensor> {
         let check = |h: &input::ImageHeader| {
             let dims = (h.height as usize, h.width as usize);
             super::model::check_budget(self.estimate_run_bytes(h), dims, self.memory_limit).map_err(
@@ -223,18 +248,33 @@ impl Session {
             )
         };
         // The decoded image is dropped once normalised; only the f32 input stays.
-        let x = {
-            let img = input::load_image_within(path, check)?;
-            input::normalise(&img, &self.norm)?
-        };
+        let img = input::load_image_within(path, check)?;
+        input::normalise(&img, &self.norm)
+    }
+
+    /// Run a normalised input `x` that came from `path` (named in errors); the semantics are the
+    /// session's unless `opts` sets them. Inputs larger than the image (extra padding) are
+    /// checked against the memory limit here.
+    pub fn forward_input(
+        &self,
+        path: &Path,
+        x: &candle_core::Tensor,
+        opts: &ForwardOptions,
+    ) -> Result<StageOutputs> {
+        let (_, h, w) = x.dims3()?;
+        let semantics = opts.semantics.unwrap_or(self.semantics);
+        self.model
+            .check_memory((h, w), Some(semantics), self.memory_limit)
+            .map_err(|e| match e {
+                Error::Limit(m) => Error::Limit(format!("{}: {m}", path.display())),
+                other => other,
+            })?;
         let opts = ForwardOptions {
-            semantics: Some(self.semantics),
-            stage_norms,
-            final_norm,
-            attention_of: None,
+            semantics: Some(semantics),
+            ..opts.clone()
         };
         self.model
-            .forward(&x, &opts, &RunControl::default())
+            .forward(x, &opts, &RunControl::default())
             .map_err(|e| match e {
                 Error::NonFinite(m) => Error::NonFinite(format!(
                     "{}: {m} (checkpoint {})",

@@ -1,11 +1,12 @@
 //! One image's stage-by-stage figure through the shared renderer, and, when asked, the
 //! per-stage statistics of its scalar map.
 
+use crate::analysis::padding::{variant_input, variant_options};
 use crate::analysis::{
-    prepare_stages, stage_stats, stats_csv, stats_json, Colormap, MapKind, ScaleSpec, TokenNorm,
+    prepare_stage_pair, stage_stats, stats_csv, stats_json, Colormap, MapKind, ScaleSpec, TokenNorm,
 };
 use crate::engine::input::load_image;
-use crate::engine::{Session, SessionOptions};
+use crate::engine::{ForwardOptions, Session, SessionOptions};
 use crate::error::{Error, Result};
 use crate::render::{self, FigureSpec, Overlays};
 use std::path::PathBuf;
@@ -74,13 +75,7 @@ pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
             "--stats/--csv need a scalar map (norm or channel:N); pca gives colours".into(),
         ));
     }
-    let mut inputs = vec![
-        ("--weights", opts.session.weights.as_path()),
-        ("--image", opts.image.as_path()),
-    ];
-    if let Some(c) = &opts.session.config {
-        inputs.push(("--config", c.as_path()));
-    }
+    let inputs = opts.session.run_inputs(&opts.image);
     let mut outputs = vec![("--out", opts.out.as_path())];
     if let Some(p) = &opts.stats {
         outputs.push(("--stats", p.as_path()));
@@ -100,9 +95,23 @@ pub fn save_figure(opts: &FigureOptions) -> Result<FigureOutcome> {
             deepest.saturating_sub(1)
         )));
     }
-    let out = session.run_image(&opts.image, false, false)?;
+    let (out, second) = match kind.variant() {
+        None => (session.run_image(&opts.image, false, false)?, None),
+        // Padding kinds compare the image's pass with a changed pass of the same checkpoint.
+        Some(v) => {
+            let x = session.load_input(&opts.image)?;
+            let base = session.forward_input(&opts.image, &x, &ForwardOptions::default())?;
+            let sem = base.geometry.semantics;
+            let second = session.forward_input(
+                &opts.image,
+                &variant_input(v, &x)?,
+                &variant_options(v, sem),
+            )?;
+            (base, Some(second))
+        }
+    };
     let image = load_image(&opts.image)?;
-    let (raw, stages) = prepare_stages(&out, kind, &opts.spec)?;
+    let (raw, stages) = prepare_stage_pair(&out, second.as_ref(), kind, &opts.spec)?;
     let stats = if opts.stats.is_some() || opts.csv.is_some() {
         Some(stage_stats(&kind.id(), &raw, &out.geometry)?)
     } else {

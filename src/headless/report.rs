@@ -600,6 +600,13 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             args.map.id()
         )));
     }
+    if args.map.variant().is_some() {
+        return Err(Error::BadArgument(format!(
+            "--map {} compares each image with a second pass of it (padding study); the report \
+             runs one pass per image (use mullion padding or mullion figure)",
+            args.map.id()
+        )));
+    }
     if let Some(d) = &args.regions {
         if !d.is_dir() {
             return Err(Error::bad_file(d, "--regions: not a folder"));

@@ -50,3 +50,23 @@ pub fn sample(name: &str) -> PathBuf {
 pub fn fixtures() -> PathBuf {
     root().join("tests/fixtures")
 }
+
+/// `max |got - want| / max |want|`, in f64.
+pub fn rel_diff_f64(got: &candle_core::Tensor, want: &candle_core::Tensor) -> f64 {
+    let max_abs = |t: &candle_core::Tensor| {
+        t.to_dtype(candle_core::DType::F64)
+            .unwrap()
+            .abs()
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .max(0)
+            .unwrap()
+            .to_scalar::<f64>()
+            .unwrap()
+    };
+    let d = (got.to_dtype(candle_core::DType::F64).unwrap()
+        - want.to_dtype(candle_core::DType::F64).unwrap())
+    .unwrap();
+    max_abs(&d) / max_abs(want).max(f64::MIN_POSITIVE)
+}

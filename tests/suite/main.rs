@@ -11,6 +11,7 @@ mod compare_window;
 mod demo;
 mod hardening;
 mod inspector;
+mod padding;
 mod real_window;
 mod reference_outputs;
 mod regions;

@@ -86,7 +86,7 @@ fn run_case(dir: &Path, case: &Value, semantics: Semantics) -> Run {
         semantics: Some(semantics),
         stage_norms: model.has_stage_norms(),
         final_norm: model.has_final_norm(),
-        attention_of: None,
+        ..Default::default()
     };
     let out = model.forward(&x, &opts, &RunControl::default()).unwrap();
     let mut outputs = HashMap::new();

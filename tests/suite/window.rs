@@ -275,8 +275,8 @@ fn draw_name_stats_undo_redo() {
     assert_eq!(regions.len(), 1, "messages: {:?}", messages(&h));
     assert_eq!(regions[0].label, "wilted leaf");
 
-    // Its rows (one per stage) are in the statistics panel.
-    h.run_steps(3);
+    // Its rows (one per stage) are in the statistics panel (computed on their own thread).
+    wait(&mut h);
     let row = format!("wilted leaf #{}", regions[0].id);
     assert_eq!(h.query_all_by_label(&row).count(), 3, "one row per stage");
     assert_eq!(h.state().bench.regions.stats.len(), 3);
@@ -306,6 +306,7 @@ fn draw_name_stats_undo_redo() {
 
     h.get_by_label("Redo").click();
     h.run_steps(3);
+    wait(&mut h);
     assert_eq!(
         h.state()
             .bench

@@ -137,8 +137,8 @@ fn normalise_joint(
 }
 
 /// Prepare the comparison of `a` (checkpoint A's pass) and `b` (checkpoint B's pass of the same
-/// image) for `kind` under `spec`. A kind that itself needs the pair (the difference) shows
-/// token norms in the A and B rows. PCA rows are fitted on each side separately.
+/// image) for `kind` under `spec`. A kind that itself needs a second pass (the difference, the
+/// padding studies) shows token norms in the A and B rows. PCA rows are fitted on each side separately.
 pub fn prepare_pair_view(
     a: &StageOutputs,
     b: &StageOutputs,
@@ -148,7 +148,13 @@ pub fn prepare_pair_view(
     if let Some(p) = pair_problem(a, b) {
         return Err(Error::BadArgument(p));
     }
-    let row_kind: &dyn MapKind = if kind.needs_pair() { &TokenNorm } else { kind };
+    // Kinds that need a second pass (the difference itself, padding studies) show token
+    // norms in the A and B rows.
+    let row_kind: &dyn MapKind = if kind.needs_pair() || kind.variant().is_some() {
+        &TokenNorm
+    } else {
+        kind
+    };
     let (a_raw, a_prep) = prepare_stages(a, row_kind, spec)?;
     let (b_raw, b_prep) = prepare_stages(b, row_kind, spec)?;
     let scalar = a_raw.iter().chain(&b_raw).all(|m| m.scalars().is_some());
