@@ -62,6 +62,8 @@ pub enum Action {
     /// Leave the comparison: close the base checkpoint.
     CloseBase,
     ShowDrift(bool),
+    /// The seams and border window (profiles of the lens stage).
+    ShowProfiles(bool),
     Pick(Pick),
     NextImage,
     PreviousImage,

@@ -28,6 +28,8 @@ pub struct ExportRequest {
     /// The attention inspector's query, its attention and its lines, when one is shown: the
     /// figure then carries the spotlighted stage below the stages.
     pub inspected: Option<(usize, crate::analysis::inspect::QueryAttention, Vec<String>)>,
+    /// The seams and border profiles of the lens stage are on screen: the figure carries them.
+    pub profiles: bool,
 }
 
 /// The files one save writes.
@@ -134,6 +136,24 @@ pub fn export(req: &ExportRequest) -> Result<Exported> {
             render::stack_figures(&[main, part])?
         }
         None => main,
+    };
+    let profiles = maps
+        .profiles
+        .get(req.draw.focus)
+        .and_then(Option::as_ref)
+        .filter(|_| req.profiles);
+    let fig = match profiles {
+        Some(p) => {
+            let part = render::profile::profile_figure(
+                req.draw.focus,
+                &maps.map_label,
+                p,
+                req.draw.colormap,
+                render::figure_text_px(scale),
+            )?;
+            render::stack_figures(&[fig, part])?
+        }
+        None => fig,
     };
     crate::io::save_png_atomic(&fig, &req.paths.png)?;
     if let Some(stats) = &stats {

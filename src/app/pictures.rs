@@ -9,9 +9,11 @@
 
 use super::settings::Settings;
 use crate::analysis::compare::{pair_problem, prepare_pair_view, DifferenceStage, PairView};
+use crate::analysis::padding::{size_advice, stage_profiles, StageProfiles};
 use crate::analysis::{
     parse_map_kind, prepare_stage_pair, rank_channels, Colormap, Map, PreparedStage, ScaleSpec,
 };
+use crate::engine::geometry::ModelShape;
 use crate::engine::StageOutputs;
 use crate::error::{Error, Result};
 use crate::render::{self, Overlays, PanelStyle};
@@ -34,9 +36,25 @@ pub struct MapKey {
     pub run: String,
     /// The base checkpoint's result for the same image, when comparing.
     pub base_run: Option<String>,
+    /// The second pass of the same checkpoint a padding study needs (padded input, other
+    /// pad order, every block's attention).
+    pub variant_run: Option<String>,
     /// The map kind's id (`norm`, `channel:4`, `pca`).
     pub map: String,
     pub spec: ScaleSpec,
+}
+
+/// The forward passes the maps are made from, each with the key it was cached under.
+#[derive(Clone, Copy)]
+pub struct Passes<'a> {
+    pub run: &'a str,
+    pub outputs: &'a Arc<StageOutputs>,
+    /// The base checkpoint's pass of the same image, when comparing.
+    pub base: Option<(&'a str, &'a Arc<StageOutputs>)>,
+    /// The second pass of the same checkpoint the chosen padding study needs.
+    pub variant: Option<(&'a str, &'a Arc<StageOutputs>)>,
+    /// The checkpoint's shape, for the size advice.
+    pub shape: Option<&'a ModelShape>,
 }
 
 /// What the pictures drawn from the maps depend on, beyond the maps. Window grids and the
@@ -51,10 +69,11 @@ pub struct DrawKey {
 }
 
 impl MapKey {
-    pub fn of(run: &str, base_run: Option<&str>, s: &Settings) -> MapKey {
+    pub fn of(passes: &Passes, s: &Settings) -> MapKey {
         MapKey {
-            run: run.to_string(),
-            base_run: base_run.map(str::to_string),
+            run: passes.run.to_string(),
+            base_run: passes.base.map(|b| b.0.to_string()),
+            variant_run: passes.variant.map(|v| v.0.to_string()),
             map: s.map_id(),
             spec: s.scale_spec(),
         }
@@ -113,6 +132,10 @@ pub struct PreparedMaps {
     pub pair: Option<PairView>,
     /// Why the two passes cannot be compared token by token, when they cannot.
     pub pair_problem: Option<String>,
+    /// Per stage, the map's window-position and border profiles (scalar maps only).
+    pub profiles: Vec<Option<StageProfiles>>,
+    /// The padding every stage gets at this input size and the nearest sizes that need none.
+    pub size_advice: Option<String>,
 }
 
 impl PreparedMaps {
@@ -218,6 +241,14 @@ pub struct WorkCount {
 
 type JobResult = Result<(Arc<PreparedMaps>, Drawn)>;
 
+/// This checkpoint's pass, the base's and the padding study's, owned by the job.
+type OwnedPasses = (
+    Arc<StageOutputs>,
+    Option<Arc<StageOutputs>>,
+    Option<Arc<StageOutputs>>,
+    Option<ModelShape>,
+);
+
 struct Job {
     map_key: MapKey,
     draw_key: DrawKey,
@@ -307,8 +338,7 @@ fn draw_pair(
 
 /// Prepare (unless `reuse` already has them) and draw, on the job thread.
 fn work(
-    outputs: Arc<StageOutputs>,
-    base: Option<Arc<StageOutputs>>,
+    (outputs, base, variant, shape): OwnedPasses,
     input: Arc<RgbImage>,
     image_size: (u32, u32),
     map_key: MapKey,
@@ -322,14 +352,24 @@ fn work(
             let kind = parse_map_kind(&map_key.map)?;
             let problem = base.as_ref().and_then(|b| pair_problem(b, &outputs));
             // The pair is A (base) and B (this checkpoint); a kind that compares needs both.
-            let other = base.as_deref().filter(|_| problem.is_none());
-            if kind.needs_pair() && other.is_none() {
+            let compared = base.as_deref().filter(|_| problem.is_none());
+            if kind.needs_pair() && compared.is_none() {
                 return Err(Error::BadArgument(problem.unwrap_or_else(|| {
                     "this map compares two checkpoints: open a base checkpoint (A) first".into()
                 })));
             }
+            // A padding study's second pass is of this checkpoint; the difference's is A's.
+            let other = match kind.variant() {
+                Some(_) => variant.as_deref(),
+                None => compared,
+            };
             let (raw, stages) = prepare_stage_pair(&outputs, other, kind.as_ref(), &map_key.spec)?;
-            let pair = other
+            let profiles = raw
+                .iter()
+                .zip(&outputs.geometry.stages)
+                .map(|(m, sg)| m.scalars().map(|v| stage_profiles(v, sg)).transpose())
+                .collect::<Result<Vec<_>>>()?;
+            let pair = compared
                 .map(|b| prepare_pair_view(b, &outputs, kind.as_ref(), &map_key.spec))
                 .transpose()?;
             let ranking = (0..outputs.stages.len())
@@ -353,6 +393,11 @@ fn work(
                 base_outputs: base.clone(),
                 pair,
                 pair_problem: problem,
+                profiles,
+                size_advice: shape.map(|sh| {
+                    let g = &outputs.geometry;
+                    size_advice(g.image, &sh, g.semantics, crate::render::MAX_SIDE as usize).text()
+                }),
             })
         }
     };
@@ -425,15 +470,14 @@ impl Pictures {
     /// `wake` is called when the job is done (the window passes a repaint request).
     pub fn want(
         &mut self,
-        run: &str,
-        outputs: &Arc<StageOutputs>,
-        base: Option<(&str, &Arc<StageOutputs>)>,
+        passes: Passes,
         input: &Arc<RgbImage>,
         image_size: (u32, u32),
         settings: &Settings,
         wake: Option<Box<dyn Fn() + Send>>,
     ) {
-        let map_key = MapKey::of(run, base.map(|b| b.0), settings);
+        let outputs = passes.outputs;
+        let map_key = MapKey::of(&passes, settings);
         let draw_key = DrawKey::of(settings, outputs.stages.len());
         if self
             .job
@@ -468,7 +512,9 @@ impl Pictures {
             None
         };
         let (tx, rx) = channel();
-        let base = base.map(|b| b.1.clone());
+        let base = passes.base.map(|b| b.1.clone());
+        let variant = passes.variant.map(|v| v.1.clone());
+        let shape = passes.shape.cloned();
         let (o, i, mk, dk) = (
             outputs.clone(),
             input.clone(),
@@ -479,7 +525,7 @@ impl Pictures {
             .name(THREAD_NAME.into())
             .spawn(move || {
                 let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
-                    work(o, base, i, image_size, mk, dk, reuse)
+                    work((o, base, variant, shape), i, image_size, mk, dk, reuse)
                 }))
                 .unwrap_or_else(|_| Err(Error::Internal("preparing the maps panicked".into())));
                 let _ = tx.send(r);

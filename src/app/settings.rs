@@ -23,6 +23,10 @@ pub struct Settings {
     pub norm: Normalisation,
     pub map_kind: String,
     pub channel: usize,
+    /// Extra zero rows and columns of the padding-sensitivity map, in input pixels.
+    pub pad_px: usize,
+    /// The block (in every stage) of the attention-on-padding map.
+    pub pad_block: usize,
     pub colormap: String,
     pub shared_scale: bool,
     pub log_scale: bool,
@@ -57,6 +61,8 @@ impl Default for Settings {
             norm: Normalisation::IMAGENET,
             map_kind: "norm".into(),
             channel: 0,
+            pad_px: 16,
+            pad_block: 0,
             colormap: "viridis".into(),
             shared_scale: false,
             log_scale: false,
@@ -83,6 +89,8 @@ impl Settings {
     pub fn map_id(&self) -> String {
         match self.map_kind.as_str() {
             "channel" => format!("channel:{}", self.channel),
+            "padding" => format!("padding:{}", self.pad_px),
+            "pad-attention" => format!("pad-attention:{}", self.pad_block),
             other => other.to_string(),
         }
     }

@@ -9,12 +9,15 @@
 use super::actions::{Action, Pick};
 use super::export::{export, ExportPaths, ExportRequest, Exported};
 use super::loading::{Loaded, Loader, Slot, Wake};
-use super::pictures::{DrawKey, Pictures};
+use super::pictures::{DrawKey, Passes, Pictures};
 use super::region_doc::RegionDoc;
 use super::settings::Settings;
 use crate::analysis::compare::{group_drift, Drift, GroupDrift};
 use crate::analysis::inspect::{query_attention, QueryAttention};
-use crate::engine::input::DEFAULT_MEMORY_LIMIT;
+use crate::analysis::padding::{all_attention_bytes, variant_input, variant_options, Variant};
+use crate::analysis::parse_map_kind;
+use crate::engine::input::{normalise, DEFAULT_MEMORY_LIMIT};
+use crate::engine::model::check_budget;
 use crate::engine::worker::{Event, Job};
 use crate::engine::{Backbone, Config, ForwardOptions, LoadReport, Progress, StageOutputs};
 use crate::error::{Error, Result};
@@ -52,6 +55,27 @@ pub enum Level {
 pub struct Message {
     pub level: Level,
     pub text: String,
+}
+
+/// Take in what an extra pass (the inspector's, a padding study's) sent; its key and result
+/// once it finished.
+fn poll_extra(slot: &mut Option<Pending>) -> Option<(String, Result<Arc<StageOutputs>>)> {
+    let mut finished = None;
+    if let Some(p) = slot.as_mut() {
+        while let Some(ev) = p.job.poll() {
+            match ev {
+                Event::Prepared(_) => {}
+                Event::Progress(pr) => p.progress = Some(pr),
+                Event::Finished(r) => {
+                    finished = Some(r);
+                    break;
+                }
+            }
+        }
+    }
+    let result = finished?;
+    let p = slot.take()?;
+    Some((p.key, result))
 }
 
 /// The message log keeps this many lines.
@@ -117,6 +141,8 @@ pub struct Workbench {
     /// The weight drift of the pair, once both checkpoints are files.
     pub drift: Option<DriftView>,
     pub show_drift: bool,
+    /// The seams and border window is open (and saved figures carry its profiles).
+    pub show_profiles: bool,
     /// The attention inspector: the query token, what is shown for it, or why nothing is.
     pub inspect: Option<InspectQuery>,
     pub inspected: Option<Inspected>,
@@ -142,6 +168,10 @@ pub struct Workbench {
     /// A pass that keeps one block's attention, for the inspector, and its result.
     pending_attention: Option<Pending>,
     attention_pass: Option<(String, Arc<StageOutputs>)>,
+    /// The second pass of this checkpoint a padding study needs, its result, or why it failed.
+    pending_variant: Option<Pending>,
+    variant_pass: Option<(String, Arc<StageOutputs>)>,
+    variant_problem: Option<(String, String)>,
     exporting: Option<Receiver<Result<Exported>>>,
     cache: HashMap<String, (Arc<image::RgbImage>, Arc<StageOutputs>)>,
     cache_order: Vec<String>,
@@ -165,6 +195,7 @@ impl Workbench {
             shown_base: None,
             drift: None,
             show_drift: false,
+            show_profiles: false,
             inspect: None,
             inspected: None,
             inspect_problem: None,
@@ -183,6 +214,9 @@ impl Workbench {
             pending_base: None,
             pending_attention: None,
             attention_pass: None,
+            pending_variant: None,
+            variant_pass: None,
+            variant_problem: None,
             exporting: None,
             cache: HashMap::new(),
             cache_order: Vec::new(),
@@ -629,6 +663,7 @@ impl Workbench {
             self.pending.take(),
             self.pending_base.take(),
             self.pending_attention.take(),
+            self.pending_variant.take(),
         ]
         .into_iter()
         .flatten()
@@ -655,7 +690,15 @@ impl Workbench {
     }
 
     pub fn is_busy(&self) -> bool {
-        self.pending.is_some() || self.pending_base.is_some() || self.pending_attention.is_some()
+        self.pending.is_some()
+            || self.pending_base.is_some()
+            || self.pending_attention.is_some()
+            || self.pending_variant.is_some()
+    }
+
+    /// The padding study's second pass, when one runs: its progress.
+    pub fn variant_running(&self) -> Option<Option<Progress>> {
+        self.pending_variant.as_ref().map(|p| p.progress)
     }
 
     /// The inspector's attention pass, when one runs: its progress.
@@ -742,6 +785,7 @@ impl Workbench {
         self.poll_slot(Slot::Main);
         self.poll_slot(Slot::Base);
         self.poll_attention();
+        self.poll_variant();
         if let Some(msg) = self.pictures.poll() {
             self.error(msg);
         }
@@ -768,7 +812,8 @@ impl Workbench {
     pub fn refresh(&mut self) {
         self.regions.outlines = self.settings.show_regions;
         let waiting_for_base = self.base.is_some() && self.pending_base.is_some();
-        match (&self.shown, waiting_for_base) {
+        let variant = self.refresh_variant();
+        match (&self.shown, waiting_for_base || variant.is_err()) {
             (Some(shown), false) => {
                 let size = self
                     .image
@@ -780,15 +825,21 @@ impl Workbench {
                     .as_ref()
                     .and(self.shown_base.as_ref())
                     .map(|b| (b.key.as_str(), &b.outputs));
-                self.pictures.want(
-                    &shown.key,
-                    &shown.outputs,
+                let variant = variant
+                    .ok()
+                    .flatten()
+                    .and_then(|_| self.variant_pass.as_ref())
+                    .map(|(k, o)| (k.as_str(), o));
+                let shape = self.weights.as_ref().map(|w| w.model.config.shape());
+                let passes = Passes {
+                    run: &shown.key,
+                    outputs: &shown.outputs,
                     base,
-                    &shown.input,
-                    size,
-                    &self.settings,
-                    wake,
-                );
+                    variant,
+                    shape: shape.as_ref(),
+                };
+                self.pictures
+                    .want(passes, &shown.input, size, &self.settings, wake);
             }
             _ => {
                 if self.pictures.maps.is_some() || self.pictures.textures.is_some() {
@@ -910,28 +961,110 @@ impl Workbench {
     }
 
     fn poll_attention(&mut self) {
-        let mut finished = None;
-        if let Some(p) = &mut self.pending_attention {
-            while let Some(ev) = p.job.poll() {
-                match ev {
-                    Event::Prepared(_) => {}
-                    Event::Progress(pr) => p.progress = Some(pr),
-                    Event::Finished(r) => {
-                        finished = Some(r);
-                        break;
-                    }
-                }
-            }
-        }
-        let Some(result) = finished else { return };
-        let p = self.pending_attention.take().expect("pending");
+        let Some((key, result)) = poll_extra(&mut self.pending_attention) else {
+            return;
+        };
         match result {
-            Ok(out) => self.attention_pass = Some((p.key, out)),
+            Ok(out) => self.attention_pass = Some((key, out)),
             Err(Error::Cancelled) => {}
             Err(e) => {
                 let msg = format!("attention inspector: {e}");
                 self.inspect_problem = Some(msg.clone());
                 self.error(msg);
+            }
+        }
+    }
+
+    /// The second pass the chosen map kind needs (a padding study), with its cache key.
+    fn wanted_variant(&self) -> Option<(String, Variant)> {
+        let shown = self.shown.as_ref()?;
+        let v = parse_map_kind(&self.settings.map_id()).ok()?.variant()?;
+        Some((format!("{}|second pass {v:?}", shown.key), v))
+    }
+
+    /// Keep the padding study's second pass in step with the map kind: `Ok(None)` when none is
+    /// needed, `Ok(Some(()))` when it is there, `Err(())` while it runs or when it failed (the
+    /// maps then wait, or say why).
+    fn refresh_variant(&mut self) -> std::result::Result<Option<()>, ()> {
+        let Some((key, v)) = self.wanted_variant() else {
+            if let Some(p) = self.pending_variant.take() {
+                p.job.cancel();
+            }
+            return Ok(None);
+        };
+        if self.variant_pass.as_ref().is_some_and(|(k, _)| *k == key) {
+            return Ok(Some(()));
+        }
+        if let Some((_, msg)) = self.variant_problem.as_ref().filter(|(k, _)| *k == key) {
+            self.pictures.problem = Some(msg.clone());
+            return Err(());
+        }
+        if self.pending_variant.as_ref().is_none_or(|p| p.key != key) {
+            if let Err(e) = self.start_variant(key.clone(), v) {
+                let msg = format!("no maps: the second pass this map needs cannot run: {e}");
+                self.error(msg.clone());
+                self.variant_problem = Some((key, msg));
+            }
+        }
+        Err(())
+    }
+
+    fn start_variant(&mut self, key: String, v: Variant) -> Result<()> {
+        if let Some(p) = self.pending_variant.take() {
+            p.job.cancel();
+        }
+        let (Some(shown), Some(w)) = (&self.shown, &self.weights) else {
+            return Ok(());
+        };
+        let g = &shown.outputs.geometry;
+        let semantics = g.semantics;
+        match v {
+            Variant::PaddedInput { rows, cols } => w.model.check_memory(
+                (g.image.0 + rows, g.image.1 + cols),
+                Some(semantics),
+                DEFAULT_MEMORY_LIMIT,
+            )?,
+            Variant::Attention => {
+                let need = all_attention_bytes(g, &w.model.config.heads)
+                    .and_then(|a| a.checked_add(w.model.estimate_bytes(g.image, Some(semantics))?));
+                check_budget(need, g.image, DEFAULT_MEMORY_LIMIT)?
+            }
+            Variant::OtherPadOrder => {
+                w.model
+                    .check_memory(g.image, Some(semantics), DEFAULT_MEMORY_LIMIT)?
+            }
+        }
+        let (input, norm) = (shown.input.clone(), self.settings.norm);
+        let wake: Option<Box<dyn Fn() + Send + Sync>> = self
+            .repaint
+            .clone()
+            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>);
+        let job = Job::spawn_with(
+            w.model.clone(),
+            variant_options(v, semantics),
+            wake,
+            move || variant_input(v, &normalise(&input, &norm)?),
+        );
+        self.pending_variant = Some(Pending {
+            key,
+            job,
+            input: None,
+            progress: None,
+        });
+        Ok(())
+    }
+
+    fn poll_variant(&mut self) {
+        let Some((key, result)) = poll_extra(&mut self.pending_variant) else {
+            return;
+        };
+        match result {
+            Ok(out) => self.variant_pass = Some((key, out)),
+            Err(Error::Cancelled) => {}
+            Err(e) => {
+                let msg = format!("no maps: the second pass this map needs failed: {e}");
+                self.error(msg.clone());
+                self.variant_problem = Some((key, msg));
             }
         }
     }
@@ -1002,6 +1135,7 @@ impl Workbench {
             base: self.base.as_ref().map(|w| w.name.clone()),
             paths,
             rows: self.regions.stats.clone(),
+            profiles: self.show_profiles,
             inspected: self.inspected.as_ref().map(|i| {
                 let mut lines = crate::app::inspector::describe(
                     &i.attention,
@@ -1086,6 +1220,7 @@ impl Workbench {
             }
             Action::CloseBase => self.close_base(),
             Action::ShowDrift(on) => self.show_drift = on,
+            Action::ShowProfiles(on) => self.show_profiles = on,
             Action::Pick(what) => {
                 let wake = self.wake();
                 self.loader.pick(what, wake);

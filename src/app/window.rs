@@ -12,6 +12,7 @@ use super::panels::lens::Lens;
 use super::panels::load_report::LoadReportWindow;
 use super::panels::messages::MessageLog;
 use super::panels::pointer::Pointer;
+use super::panels::profiles::ProfilesPanel;
 use super::panels::readout::Readout;
 use super::panels::region_panel::RegionPanel;
 use super::panels::region_table::RegionTable;
@@ -37,6 +38,7 @@ pub struct Panels {
     pub help: Help,
     pub report: LoadReportWindow,
     pub drift: DriftPanel,
+    pub profiles: ProfilesPanel,
 }
 
 /// The whole window: the state and the panels.
@@ -138,6 +140,9 @@ impl Window {
         }
         if b.show_drift {
             actions.extend(p.drift.ui(ui, b));
+        }
+        if b.show_profiles {
+            actions.extend(p.profiles.ui(ui, b));
         }
         p.pointer.end_frame();
         for a in actions {

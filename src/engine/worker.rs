@@ -54,6 +54,17 @@ impl Job {
         })
     }
 
+    /// Like [`Job::spawn`], with the input made on the worker thread by `prepare` (for a
+    /// second pass whose input is the first one's, changed: padded, say).
+    pub fn spawn_with(
+        model: Arc<Backbone>,
+        opts: ForwardOptions,
+        wake: Option<Box<dyn Fn() + Send + Sync>>,
+        prepare: impl FnOnce() -> Result<Tensor> + Send + 'static,
+    ) -> Job {
+        Job::spawn_task(model, opts, wake, move |_| prepare())
+    }
+
     fn spawn_task(
         model: Arc<Backbone>,
         opts: ForwardOptions,

@@ -8,6 +8,7 @@ pub mod figure;
 pub mod legend;
 pub mod pair;
 pub mod panel;
+pub mod profile;
 pub mod spotlight;
 pub mod text;
 

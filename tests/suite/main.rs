@@ -12,6 +12,7 @@ mod demo;
 mod hardening;
 mod inspector;
 mod padding;
+mod padding_window;
 mod real_window;
 mod reference_outputs;
 mod regions;

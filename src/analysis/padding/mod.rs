@@ -33,7 +33,7 @@ pub use attention::{
     PadShareStats,
 };
 pub use orders::{order_disagreement, OrderDisagreement, OrderStats, ORDER_THRESHOLD};
-pub use profile::{border_profile, window_profile, ProfileBin};
+pub use profile::{border_profile, stage_profiles, window_profile, ProfileBin, StageProfiles};
 pub use sizes::{size_advice, SizeAdvice, StagePadding};
 pub use sweep::{pad_input, sweep_cosines, PaddingSensitivity, MAX_PAD_PX};
 

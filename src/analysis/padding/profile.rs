@@ -77,6 +77,34 @@ pub fn border_profile(values: &[f32], rows: usize, cols: usize) -> Result<Vec<Pr
         .collect())
 }
 
+/// One stage's profiles of a map: the window-position profiles of its first regular and first
+/// shifted block (each with its window size), and the border profile.
+#[derive(Clone, Debug, PartialEq)]
+pub struct StageProfiles {
+    pub regular: Option<((usize, usize), Vec<ProfileBin>)>,
+    pub shifted: Option<((usize, usize), Vec<ProfileBin>)>,
+    pub border: Vec<ProfileBin>,
+}
+
+/// The profiles of `values` (row-major over the stage grid) for stage `sg`.
+pub fn stage_profiles(
+    values: &[f32],
+    sg: &crate::engine::geometry::StageGeometry,
+) -> Result<StageProfiles> {
+    let of = |shifted: bool| -> Result<Option<((usize, usize), Vec<ProfileBin>)>> {
+        sg.blocks
+            .iter()
+            .find(|b| b.is_shifted() == shifted)
+            .map(|b| Ok((b.window(), window_profile(values, b)?)))
+            .transpose()
+    };
+    Ok(StageProfiles {
+        regular: of(false)?,
+        shifted: of(true)?,
+        border: border_profile(values, sg.grid.0, sg.grid.1)?,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

@@ -102,6 +102,20 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
                 st.index, st.grid.1, st.grid.0, pc, pr
             ));
         }
+        if let Some(advice) = bench
+            .pictures
+            .maps
+            .as_ref()
+            .and_then(|m| m.size_advice.as_ref())
+        {
+            egui::CollapsingHeader::new("Sizes without padding")
+                .default_open(false)
+                .show(ui, |ui| {
+                    for line in advice.lines() {
+                        ui.small(line);
+                    }
+                });
+        }
     }
 
     padding_rules(bench, s, ui);
@@ -113,6 +127,9 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
             "channel" => "one channel",
             "pca" => "PCA to RGB",
             "difference" => DIFFERENCE_LABEL,
+            "padding" => "padding sensitivity",
+            "pad-order" => "pad-order disagreement",
+            "pad-attention" => "attention on padding",
             _ => "token L2 norm",
         })
         .show_ui(ui, |ui| {
@@ -122,7 +139,24 @@ fn controls(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
             if bench.base.is_some() {
                 ui.selectable_value(&mut s.map_kind, "difference".to_string(), DIFFERENCE_LABEL);
             }
+            ui.separator();
+            ui.selectable_value(
+                &mut s.map_kind,
+                "padding".to_string(),
+                "padding sensitivity",
+            );
+            ui.selectable_value(
+                &mut s.map_kind,
+                "pad-order".to_string(),
+                "pad-order disagreement",
+            );
+            ui.selectable_value(
+                &mut s.map_kind,
+                "pad-attention".to_string(),
+                "attention on padding",
+            );
         });
+    padding_kind_options(bench, s, ui);
     if bench.base.is_some() {
         ui.small(if s.map_kind == "difference" {
             "the lens, regions and Save figure use the difference; the A and B rows show token norms"
@@ -316,6 +350,53 @@ fn inspector(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
             ui.small("click a token in a stage picture or the lens");
         }
     }
+}
+
+/// The settings of the padding studies' map kinds, and what each one shows.
+fn padding_kind_options(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
+    match s.map_kind.as_str() {
+        "padding" => {
+            ui.horizontal(|ui| {
+                labelled_drag(
+                    ui,
+                    "extra padding",
+                    egui::DragValue::new(&mut s.pad_px)
+                        .range(1..=crate::analysis::padding::MAX_PAD_PX)
+                        .suffix(" px"),
+                );
+            });
+            ui.small(format!(
+                "1 - cosine of each token with the same token when {} zero rows and columns are \
+                 added at the bottom and right: which tokens move when only the padding grows",
+                s.pad_px
+            ));
+        }
+        "pad-order" => {
+            ui.small(
+                "||f1 - f2|| / ||f1|| per token: pad-then-shift (f1) against shift-then-pad \
+                 (f2), the small-stage rule kept: where two libraries' features part",
+            );
+        }
+        "pad-attention" => {
+            let min_depth = bench
+                .weights
+                .as_ref()
+                .and_then(|w| w.model.config.depths.iter().min().copied())
+                .unwrap_or(1);
+            ui.horizontal(|ui| {
+                labelled_drag(
+                    ui,
+                    "block (every stage)",
+                    egui::DragValue::new(&mut s.pad_block).range(0..=min_depth.saturating_sub(1)),
+                );
+            });
+            ui.small(
+                "the share of each token's attention (mean over heads) that falls on padding keys",
+            );
+        }
+        _ => return,
+    }
+    ui.small(crate::analysis::padding::PADDING_CAUTION);
 }
 
 /// A number field with a visible name that assistive tools (and the tests) find it by.

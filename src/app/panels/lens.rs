@@ -70,6 +70,9 @@ impl Lens {
             if ui.small_button("Fit").clicked() {
                 self.fit();
             }
+            if ui.small_button("Seams and border").clicked() {
+                out.push(Action::ShowProfiles(!bench.show_profiles));
+            }
             if bench.pictures.is_busy() {
                 ui.small("updating…");
             }

@@ -10,6 +10,7 @@ pub mod lens;
 pub mod load_report;
 pub mod messages;
 pub mod pointer;
+pub mod profiles;
 pub mod readout;
 pub mod region_panel;
 pub mod region_table;
