@@ -204,7 +204,11 @@ impl StageStrip {
             canvas: c.canvas_px,
             to_image: f.to_image,
         };
-        out.extend(canvas.interact(&resp, &at, &f.bench.regions));
+        // With the inspector on, a click on this checkpoint's pictures picks a query token and
+        // leaves the regions alone.
+        if !(f.bench.settings.inspecting && c.inspectable && canvas.tool == Tool::Pick) {
+            out.extend(canvas.interact(&resp, &at, &f.bench.regions));
+        }
         let painter = ui.painter_at(resp.rect);
         let dense = c.stage.is_some_and(|s| {
             !paint_overlays(&painter, &g.stages[s], g.image, &f.overlays, resp.rect).is_empty()
