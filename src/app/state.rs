@@ -449,20 +449,8 @@ impl Workbench {
                 result,
             } => match result {
                 Ok(loaded) => {
-                    Settings::remember(&mut self.settings.recent_weights, &path);
-                    let name = file_name(&path);
-                    self.info(format!(
-                        "loaded base (A) {name}: {} layout, depths {:?}",
-                        loaded.report.layout, loaded.model.config.depths
-                    ));
                     self.shown_base = None;
-                    self.base = Some(LoadedWeights {
-                        name,
-                        path: Some(path),
-                        model: Arc::new(loaded.model),
-                        report: Some(loaded.report),
-                        random: false,
-                    });
+                    self.base = Some(self.take_checkpoint(path, loaded, "base (A) "));
                     self.start_drift();
                     self.request();
                 }
@@ -485,19 +473,7 @@ impl Workbench {
                 result,
             } => match result {
                 Ok(loaded) => {
-                    Settings::remember(&mut self.settings.recent_weights, &path);
-                    let name = file_name(&path);
-                    self.info(format!(
-                        "loaded {name}: {} layout, depths {:?}",
-                        loaded.report.layout, loaded.model.config.depths
-                    ));
-                    self.weights = Some(LoadedWeights {
-                        name,
-                        path: Some(path),
-                        model: Arc::new(loaded.model),
-                        report: Some(loaded.report),
-                        random: false,
-                    });
+                    self.weights = Some(self.take_checkpoint(path, loaded, ""));
                     self.settings.focus_stage = self
                         .settings
                         .focus_stage
@@ -529,6 +505,28 @@ impl Workbench {
                 )
             }
             Loaded::PickedNothing { at_once: false } => {}
+        }
+    }
+
+    /// A checkpoint a loader opened: remembered among the recent files and said in the log.
+    fn take_checkpoint(
+        &mut self,
+        path: PathBuf,
+        loaded: crate::engine::LoadedCheckpoint,
+        which: &str,
+    ) -> LoadedWeights {
+        Settings::remember(&mut self.settings.recent_weights, &path);
+        let name = file_name(&path);
+        self.info(format!(
+            "loaded {which}{name}: {} layout, depths {:?}",
+            loaded.report.layout, loaded.model.config.depths
+        ));
+        LoadedWeights {
+            name,
+            path: Some(path),
+            model: Arc::new(loaded.model),
+            report: Some(loaded.report),
+            random: false,
         }
     }
 

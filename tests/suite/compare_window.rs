@@ -9,6 +9,7 @@
 //! forward passes (linear CKA and cosine are themselves checked against numpy in `compare.rs`).
 
 use crate::common::{fixtures, sample};
+use crate::kit::{harness, type_path, wait};
 use egui_kittest::kittest::{By, Queryable};
 use egui_kittest::Harness;
 use mullion::analysis::compare::{linear_cka, token_cosines, DifferenceStage};
@@ -17,39 +18,8 @@ use mullion::annotation::Shape;
 use mullion::app::actions::{Action, RegionEdit};
 use mullion::app::panels::drift::Column;
 use mullion::app::panels::readout::hover_lines;
-use mullion::app::settings::Settings;
 use mullion::app::Window;
 use std::path::Path;
-use std::time::Duration;
-
-fn harness() -> Harness<'static, Window> {
-    let mut h = Harness::builder()
-        .with_size(egui::vec2(1400.0, 900.0))
-        .build_ui_state(
-            |ui, w: &mut Window| w.ui(ui),
-            Window::new(Settings::default()),
-        );
-    h.run_steps(2);
-    h
-}
-
-fn wait(h: &mut Harness<'_, Window>) {
-    for _ in 0..3 {
-        assert!(
-            h.state_mut().bench.wait_idle(Duration::from_secs(120)),
-            "the threads did not finish"
-        );
-        h.run_steps(2);
-    }
-}
-
-fn type_path(h: &mut Harness<'_, Window>, path: &Path, button: &str) {
-    h.state_mut().panels.sources.typed_path = path.display().to_string();
-    h.run_steps(1);
-    h.get_by_label(button).click();
-    h.run_steps(2);
-    wait(h);
-}
 
 fn messages(h: &Harness<'_, Window>) -> String {
     let m: Vec<String> = h

@@ -6,19 +6,11 @@
 //! reference libraries in the padding suite).
 
 use crate::common::sample;
+use crate::kit::{harness, type_path, wait};
 use egui_kittest::kittest::{By, Queryable};
 use egui_kittest::Harness;
-use mullion::app::settings::Settings;
 use mullion::app::Window;
 use mullion::engine::{ForwardOptions, RunControl};
-use std::time::Duration;
-
-fn wait(h: &mut Harness<'_, Window>) {
-    for _ in 0..3 {
-        assert!(h.state_mut().bench.wait_idle(Duration::from_secs(120)));
-        h.run_steps(2);
-    }
-}
 
 fn click_at(h: &mut Harness<'_, Window>, p: egui::Pos2) {
     h.hover_at(p);
@@ -39,19 +31,9 @@ fn pick_a_token_see_its_window_switch_block_and_head_and_save() {
     let dir = tempfile::tempdir().unwrap();
     let img = dir.path().join("tray-01-333x250.png");
     std::fs::copy(sample("tray-01-333x250.png"), &img).unwrap();
-    let mut h = Harness::builder()
-        .with_size(egui::vec2(1400.0, 900.0))
-        .build_ui_state(
-            |ui, w: &mut Window| w.ui(ui),
-            Window::new(Settings::default()),
-        );
-    h.run_steps(2);
+    let mut h = harness();
     for p in [sample("demo.safetensors"), img.clone()] {
-        h.state_mut().panels.sources.typed_path = p.display().to_string();
-        h.run_steps(1);
-        h.get_by_label("Open path").click();
-        h.run_steps(2);
-        wait(&mut h);
+        type_path(&mut h, &p, "Open path");
     }
     h.get_by_label("Inspect attention (click a token)")
         .scroll_to_me();

@@ -11,6 +11,7 @@ mod compare_window;
 mod demo;
 mod hardening;
 mod inspector;
+mod kit;
 mod padding;
 mod padding_window;
 mod real_window;

@@ -6,19 +6,11 @@
 //! timm 1.0.31 and transformers 5.23.0.
 
 use crate::common::{mullion, sample};
+use crate::kit::{harness, type_path, wait};
 use egui_kittest::kittest::Queryable;
 use egui_kittest::Harness;
-use mullion::app::settings::Settings;
 use mullion::app::Window;
 use std::collections::BTreeMap;
-use std::time::Duration;
-
-fn wait(h: &mut Harness<'_, Window>) {
-    for _ in 0..3 {
-        assert!(h.state_mut().bench.wait_idle(Duration::from_secs(120)));
-        h.run_steps(2);
-    }
-}
 
 fn choose_kind(h: &mut Harness<'_, Window>, label: &str) {
     h.get_by_label("kind").click();
@@ -88,19 +80,9 @@ fn padding_kinds_profiles_and_size_advice_agree_with_the_command() {
     let orders = read_csv(&out.join("orders.csv"));
     let shares = read_csv(&out.join("pad_attention.csv"));
 
-    let mut h = Harness::builder()
-        .with_size(egui::vec2(1400.0, 900.0))
-        .build_ui_state(
-            |ui, w: &mut Window| w.ui(ui),
-            Window::new(Settings::default()),
-        );
-    h.run_steps(2);
+    let mut h = harness();
     for p in [weights.clone(), img.clone()] {
-        h.state_mut().panels.sources.typed_path = p.display().to_string();
-        h.run_steps(1);
-        h.get_by_label("Open path").click();
-        h.run_steps(2);
-        wait(&mut h);
+        type_path(&mut h, &p, "Open path");
     }
 
     // Padding sensitivity (16 px, the default): 1 - mean cosine of sweep.csv.

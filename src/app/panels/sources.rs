@@ -227,23 +227,18 @@ fn status_line(ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
                 };
                 ui.add(egui::ProgressBar::new(frac).text(text).desired_width(300.0));
             }
-            if let Some(p) = bench.variant_running() {
+            let extra = [
+                ("second pass", bench.variant_running()),
+                ("attention pass", bench.attention_running()),
+            ];
+            for (what, running) in extra {
+                let Some(p) = running else { continue };
                 let (frac, text) = match p {
                     Some(p) => (
                         p.done as f32 / p.total.max(1) as f32,
-                        format!("second pass: block {}/{}", p.done, p.total),
+                        format!("{what}: block {}/{}", p.done, p.total),
                     ),
-                    None => (0.0, "second pass: preparing…".into()),
-                };
-                ui.add(egui::ProgressBar::new(frac).text(text).desired_width(220.0));
-            }
-            if let Some(p) = bench.attention_running() {
-                let (frac, text) = match p {
-                    Some(p) => (
-                        p.done as f32 / p.total.max(1) as f32,
-                        format!("attention pass: block {}/{}", p.done, p.total),
-                    ),
-                    None => (0.0, "attention pass: preparing…".into()),
+                    None => (0.0, format!("{what}: preparing…")),
                 };
                 ui.add(egui::ProgressBar::new(frac).text(text).desired_width(220.0));
             }
