@@ -191,6 +191,11 @@ pub fn parse_shard(s: &str) -> std::result::Result<crate::headless::Shard, Strin
     crate::headless::Shard::new(k, n).map_err(|e| format!("'{s}': {e}"))
 }
 
+/// A thread count for `--threads`: a whole number from 1 up.
+pub fn parse_threads(s: &str) -> std::result::Result<usize, String> {
+    crate::engine::kernels::parse_threads(s)
+}
+
 /// Largest memory limit accepted, in GB.
 pub const MAX_MEMORY_GB: f64 = 1e6;
 
