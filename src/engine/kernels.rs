@@ -111,7 +111,11 @@ pub fn erf(x: f32) -> f32 {
 #[inline(always)]
 pub fn exp(x: f32) -> f32 {
     let x = x.clamp(-87.3, 88.3);
-    let n = (x * std::f32::consts::LOG2_E + 0.5).floor();
+    // floor() by truncation and a correction: `f32::floor` is a library call on the baseline
+    // target, which stops the loop from vectorising.
+    let t = x * std::f32::consts::LOG2_E + 0.5;
+    let tr = t as i32 as f32;
+    let n = if tr > t { tr - 1.0 } else { tr };
     let r = x - n * 0.693_359_4 + n * 2.121_944_4e-4;
     let z = r * r;
     let y = ((((1.987_569_1e-4 * r + 1.398_199_9e-3) * r + 8.333_452e-3) * r + 4.166_579_6e-2) * r
@@ -183,6 +187,48 @@ pub fn gather_layer_norm(
                     } else {
                         norm_row(&x[i * c..(i + 1) * c], weight, bias, eps, orow);
                     }
+                }
+            })
+        });
+}
+
+/// Patch merging's gather and norm in one pass: output row `r` is the concatenation of the
+/// `group` rows `index[r*group..(r+1)*group]` of `x` (`[tokens, c]`; index `tokens` is a zero
+/// row, padding before the norm as the published model pads), layer-normalised over its
+/// `group * c` values.
+#[allow(clippy::too_many_arguments)]
+pub fn concat_layer_norm(
+    x: &[f32],
+    c: usize,
+    index: &[u32],
+    group: usize,
+    weight: &[f32],
+    bias: &[f32],
+    eps: f32,
+    out: &mut [f32],
+) {
+    let tokens = x.len() / c;
+    let width = group * c;
+    assert_eq!(out.len(), index.len() * c, "output rows");
+    assert!(
+        weight.len() == width && bias.len() == width,
+        "norm parameters"
+    );
+    out.par_chunks_mut(ROWS_PER_TASK * width)
+        .zip(index.par_chunks(ROWS_PER_TASK * group))
+        .for_each(|(o, idx)| {
+            let mut row = vec![0f32; width];
+            simd(|| {
+                for (orow, idx) in o.chunks_exact_mut(width).zip(idx.chunks_exact(group)) {
+                    for (part, &i) in row.chunks_exact_mut(c).zip(idx) {
+                        let i = i as usize;
+                        if i >= tokens {
+                            part.fill(0.0);
+                        } else {
+                            part.copy_from_slice(&x[i * c..(i + 1) * c]);
+                        }
+                    }
+                    norm_row(&row, weight, bias, eps, orow);
                 }
             })
         });
@@ -659,6 +705,35 @@ mod tests {
         let mut got = vec![f32::NAN; index.len() * c];
         gather_layer_norm(&x, c, &index, &w, &b, 1e-5, &mut got);
         assert!(max_rel(&got, &want) < 1e-6, "{}", max_rel(&got, &want));
+        // Patch merging's form: groups of 2 rows concatenated (padding included), then the norm.
+        let w2 = randn(2 * c, 15);
+        let b2 = randn(2 * c, 16);
+        let raw = Tensor::cat(
+            &[
+                &xt,
+                &Tensor::zeros((1, c), candle_core::DType::F32, &Device::Cpu).unwrap(),
+            ],
+            0,
+        )
+        .unwrap()
+        .index_select(&idx, 0)
+        .unwrap()
+        .reshape((35, 2 * c))
+        .unwrap();
+        let want2: Vec<f32> = candle_nn::ops::layer_norm(
+            &raw,
+            &Tensor::new(w2.as_slice(), &Device::Cpu).unwrap(),
+            &Tensor::new(b2.as_slice(), &Device::Cpu).unwrap(),
+            1e-5,
+        )
+        .unwrap()
+        .flatten_all()
+        .unwrap()
+        .to_vec1()
+        .unwrap();
+        let mut got2 = vec![f32::NAN; index.len() * c];
+        concat_layer_norm(&x, c, &index, 2, &w2, &b2, 1e-5, &mut got2);
+        assert!(max_rel(&got2, &want2) < 1e-6, "{}", max_rel(&got2, &want2));
         let mut all = vec![f32::NAN; tokens * c];
         layer_norm(&x, c, &w, &b, 1e-5, &mut all);
         let want_all: Vec<f32> = normed.flatten_all().unwrap().to_vec1().unwrap();

@@ -587,6 +587,23 @@ impl PatchMerging {
     pub fn forward(&self, x: &Tensor, grid: (usize, usize)) -> Result<(Tensor, (usize, usize))> {
         let (_, c) = x.dims2()?;
         let (idx, out) = crate::engine::geometry::merge_index(grid);
+        if self.norm.frozen() && self.reduction.frozen() && !x.track_op() {
+            // Gather the 2x2 neighbours and normalise in one pass, then the reduction.
+            let rows = out.0 * out.1;
+            let mut merged = vec![0f32; rows * 4 * c];
+            with_f32(x, |xs| {
+                with_f32(&self.norm.weight, |w| {
+                    with_f32(&self.norm.bias, |b| {
+                        kernels::concat_layer_norm(xs, c, &idx, 4, w, b, LN_EPS, &mut merged);
+                        Ok(())
+                    })
+                })
+            })?;
+            let dim = self.reduction.output_dim()?;
+            let mut y = vec![0f32; rows * dim];
+            self.reduction.forward_rows(&merged, &mut y, false)?;
+            return Ok((Tensor::from_vec(y, (rows, dim), &Device::Cpu)?, out));
+        }
         let merged = gather_rows(x, idx)?.reshape((out.0 * out.1, 4 * c))?;
         let y = self.reduction.forward(&self.norm.forward(&merged)?)?;
         Ok((y, out))
