@@ -216,23 +216,11 @@ impl Config {
         n
     }
 
-    /// Bytes the weights take while the model is loaded: every parameter as f32, and the
-    /// weights of linear layers a second time (transposed once at load for the matmul).
+    /// Bytes the weights take while the model is loaded: every parameter once, as f32 (linear
+    /// weights are kept only in the transposed form the matrix products read, whatever the
+    /// file's type).
     pub fn weight_bytes(&self) -> u64 {
-        let c = self;
-        let mut linear = 0u64;
-        for i in 0..c.n_stages() {
-            let d = c.dim(i) as u64;
-            let h = c.mlp_hidden(i) as u64;
-            linear += c.depths[i] as u64 * (4 * d * d + 2 * d * h);
-            if i > 0 {
-                let din = c.dim(i - 1) as u64;
-                linear += 4 * din * 2 * din;
-            }
-        }
-        let p0 = c.patch as u64;
-        linear += c.embed_dim as u64 * c.in_chans as u64 * p0 * p0;
-        4 * (c.parameter_count(true, None) + linear)
+        4 * self.parameter_count(true, None)
     }
 
     /// Peak bytes of the tensors alive during one forward pass at `image` = (height, width),
