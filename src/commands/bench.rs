@@ -1,5 +1,7 @@
 //! `mullion bench`: time forward passes of a published model size with random weights, or of
-//! the user's own checkpoint. The last line is the contract `median_ms=<float> peak_rss_mb=<float>`.
+//! the user's own checkpoint, on the threads `--threads` asks for; prints GFLOP/s beside a
+//! measured matrix-multiply ceiling. The last line is the contract
+//! `median_ms=<float> peak_rss_mb=<float>`.
 
 use super::options::{parse_size, PresetArg};
 use crate::engine::input::DEFAULT_MEMORY_LIMIT;
@@ -48,7 +50,11 @@ fn median(times: &mut [f64]) -> f64 {
     }
 }
 
+/// Side of the square matrix product that measures the ceiling (about 2 GFLOP: milliseconds).
+const PROBE_SIZE: usize = 1024;
+
 pub fn run(args: &BenchArgs) -> Result<()> {
+    let threads = rayon::current_num_threads();
     let (h, w) = args.size;
     let (model, what) = match &args.weights {
         Some(path) => (
@@ -75,13 +81,21 @@ pub fn run(args: &BenchArgs) -> Result<()> {
     }
     let median = median(&mut times);
     let gmac = config.multiply_adds((h, w), semantics, None) as f64 / 1e9;
+    let gflops = 2.0 * gmac / (median / 1e3);
     println!(
-        "{what} at {h}x{w}, {} runs: min {:.1} ms, max {:.1} ms, {:.1} GMAC ({:.1} GMAC/s)",
+        "{what} at {h}x{w}, {threads} thread(s), {} runs: min {:.1} ms, max {:.1} ms, \
+         {:.1} GMAC ({gflops:.1} GFLOP/s)",
         args.runs,
         times[0],
         times[times.len() - 1],
         gmac,
-        gmac / (median / 1e3)
+    );
+    // The ceiling: a short single-precision matrix product on the same pool, best of a few.
+    let ceiling = crate::engine::kernels::sgemm_probe(PROBE_SIZE, 5);
+    println!(
+        "matrix-multiply ceiling ({PROBE_SIZE}^3 sgemm, best of 5): {ceiling:.1} GFLOP/s; the \
+         forward pass reaches {:.0}% of it",
+        100.0 * gflops / ceiling
     );
     println!("median_ms={median:.3} peak_rss_mb={:.1}", peak_rss_mb());
     Ok(())

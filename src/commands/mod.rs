@@ -31,6 +31,9 @@ use clap::{Parser, Subcommand};
 pub struct Cli {
     #[command(subcommand)]
     pub command: Option<Command>,
+    /// Threads for the forward pass [default: $MULLION_THREADS, else every core].
+    #[arg(long, global = true, value_parser = options::parse_threads, value_name = "N")]
+    pub threads: Option<usize>,
 }
 
 #[derive(Subcommand, Debug)]
@@ -69,6 +72,7 @@ pub enum Command {
 
 /// Run the parsed command line (no subcommand: the window on the bundled demo).
 pub fn run(cli: &Cli) -> Result<()> {
+    crate::engine::kernels::use_threads(cli.threads)?;
     match &cli.command {
         Some(Command::Features(a)) => features::run(a),
         Some(Command::Inspect(a)) => inspect::run(a),

@@ -220,6 +220,11 @@ pub fn parse_pads(s: &str) -> std::result::Result<Pads, String> {
     Ok(Pads(out))
 }
 
+/// A thread count for `--threads`: a whole number from 1 up.
+pub fn parse_threads(s: &str) -> std::result::Result<usize, String> {
+    crate::engine::kernels::parse_threads(s)
+}
+
 /// Largest memory limit accepted, in GB.
 pub const MAX_MEMORY_GB: f64 = 1e6;
 

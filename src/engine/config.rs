@@ -216,32 +216,22 @@ impl Config {
         n
     }
 
-    /// Bytes the weights take while the model is loaded: every parameter as f32, and the
-    /// weights of linear layers a second time (transposed once at load for the matmul).
+    /// Bytes the weights take while the model is loaded: every parameter once, as f32 (linear
+    /// weights are kept only in the transposed form the matrix products read, whatever the
+    /// file's type).
     pub fn weight_bytes(&self) -> u64 {
-        let c = self;
-        let mut linear = 0u64;
-        for i in 0..c.n_stages() {
-            let d = c.dim(i) as u64;
-            let h = c.mlp_hidden(i) as u64;
-            linear += c.depths[i] as u64 * (4 * d * d + 2 * d * h);
-            if i > 0 {
-                let din = c.dim(i - 1) as u64;
-                linear += 4 * din * 2 * din;
-            }
-        }
-        let p0 = c.patch as u64;
-        linear += c.embed_dim as u64 * c.in_chans as u64 * p0 * p0;
-        4 * (c.parameter_count(true, None) + linear)
+        4 * self.parameter_count(true, None)
     }
 
     /// Peak bytes of the tensors alive during one forward pass at `image` = (height, width),
-    /// the normalised input `[3, H, W]` included, from the engine's own sequence of tensors:
-    /// the patch embedding (input, padded copy, patch matrix, projection), then for every block
-    /// the larger of its attention moment (block input, LN output, window batch, q/k/v before
-    /// and after the permute, scaled q, two attention matrices `[windows, heads, N, N]` and the
-    /// shift mask) and its MLP moment (four token matrices and two hidden ones), on top of
-    /// every stage output already kept. Checked arithmetic: `None` when it overflows.
+    /// the normalised input `[3, H, W]` included, from the engine's own sequence of buffers:
+    /// the patch embedding (input, padded copy, patch matrix, projection), each patch merging
+    /// (its input, the gathered and normalised rows, the reduction), then for every block the
+    /// larger of its attention moments (block input with either the window rows and the qkv
+    /// rows, or the window rows, the projection and the new residual) and its MLP moment (block
+    /// input, residual, normalised rows, hidden rows), on top of every stage output already
+    /// kept. Per-task scratch (one window's scores) and an attention tap are left out. Checked
+    /// arithmetic: `None` when it overflows.
     pub fn forward_peak_bytes(&self, image: (usize, usize), semantics: Semantics) -> Option<u64> {
         if image.0 == 0 || image.1 == 0 || self.validate().is_err() {
             return None;
@@ -268,31 +258,28 @@ impl Config {
         for (i, s) in g.stages.iter().enumerate() {
             let c = u(self.dim(i));
             let hidden = u(self.mlp_hidden(i));
-            let heads = u(self.heads[i]);
             let t = m(u(s.grid.0), u(s.grid.1))?;
             let tc = m(t, c)?;
             if let Some((tp, cp)) = prev {
-                // Gather of 2x2 neighbours from the padded copy, LN, reduction.
+                // The previous stage's output, the 2x2 neighbours gathered and normalised in
+                // one pass, the reduction.
                 let merged = m(4, m(t, cp)?)?;
-                let moment = m(tp.checked_add(1)?, cp)?
-                    .checked_add(m(2, merged)?)?
-                    .checked_add(tc)?;
+                let moment = m(tp, cp)?.checked_add(merged)?.checked_add(tc)?;
                 peak = peak.max(kept.checked_add(moment)?);
             }
             for b in &s.blocks {
                 let n = u(b.window_area());
                 let batch = m(u(b.n_windows()), n)?;
                 let bc = m(batch, c)?;
-                let scores = m(m(batch, heads)?, n)?;
-                let mask = if b.is_shifted() { m(batch, n)? } else { 0 };
-                let base = m(2, tc)?.checked_add(bc)?;
-                let gather = m(t.checked_add(1)?, c)?;
-                let attention = base.checked_add(
-                    gather
-                        .max(m(6, bc)?)
-                        .max(m(4, bc)?.checked_add(m(2, scores)?)?.checked_add(mask)?),
-                )?;
-                let mlp = m(6, tc)?.checked_add(m(2, m(t, hidden)?)?)?;
+                // The block input stays alive throughout. Attention: the windows and the qkv
+                // rows, then the windows, the projection and the new residual.
+                let attention = tc
+                    .checked_add(m(4, bc)?)?
+                    .max(m(2, tc)?.checked_add(m(2, bc)?)?);
+                // MLP: the residual, the normalised rows and the hidden rows, plus two token
+                // matrices that the peaks measured at 3000 and 10000 pixels a side show and this
+                // sequence does not name (DEVELOPERS.md, "Memory estimate").
+                let mlp = m(5, tc)?.checked_add(m(t, hidden)?)?;
                 peak = peak.max(kept.checked_add(attention.max(mlp))?);
             }
             kept = kept.checked_add(tc)?;

@@ -7,9 +7,11 @@
 //! matmuls run over all windows and heads at once and no Rust loop touches a window.
 
 use super::checkpoint::Part;
+use super::kernels::{self, AttentionShape};
 use crate::engine::geometry::BlockGeometry;
 use crate::error::{Error, Result};
 use candle_core::{DType, Device, Tensor, D};
+use std::sync::{Arc, Mutex};
 
 /// LayerNorm eps of the published model and both reference libraries.
 pub const LN_EPS: f32 = 1e-5;
@@ -53,24 +55,53 @@ impl LayerNorm {
     }
 }
 
-/// `y = x W^T + b`. For inference `W^T` is stored contiguous once at load; trainable weights
-/// (variables) are transposed at each call so that updates to them are seen.
+impl LayerNorm {
+    fn frozen(&self) -> bool {
+        !self.weight.track_op() && !self.bias.track_op()
+    }
+
+    /// The norm of rows `index` of `x` (`[tokens, C]`) into `out`; index `tokens` is a zero
+    /// row of `out` (see [`kernels::gather_layer_norm`]).
+    fn gather_rows(&self, x: &[f32], c: usize, index: &[u32], out: &mut [f32]) -> Result<()> {
+        with_f32(&self.weight, |w| {
+            with_f32(&self.bias, |b| {
+                kernels::gather_layer_norm(x, c, index, w, b, LN_EPS, out);
+                Ok(())
+            })
+        })
+    }
+
+    fn rows(&self, x: &[f32], c: usize, out: &mut [f32]) -> Result<()> {
+        with_f32(&self.weight, |w| {
+            with_f32(&self.bias, |b| {
+                kernels::layer_norm(x, c, w, b, LN_EPS, out);
+                Ok(())
+            })
+        })
+    }
+}
+
+/// `y = x W^T + b`. For inference only `W^T` is kept (contiguous, made once at load, the one
+/// copy of the weight in memory); trainable weights (variables) are kept as they are and
+/// transposed at each call so that updates to them are seen.
 pub struct Linear {
+    /// `W^T` `[input, output]` when `transposed`, else the trainable `W` `[output, input]`.
     weight: Tensor,
-    weight_t: Option<Tensor>,
+    transposed: bool,
     bias: Option<Tensor>,
 }
 
 impl Linear {
     pub fn from_weight(weight: &Tensor, bias: Option<Tensor>) -> Result<Self> {
-        let weight_t = if weight.track_op() {
-            None
+        let transposed = !weight.track_op();
+        let weight = if transposed {
+            weight.t()?.contiguous()?
         } else {
-            Some(weight.t()?.contiguous()?)
+            weight.clone()
         };
         Ok(Linear {
-            weight: weight.clone(),
-            weight_t,
+            weight,
+            transposed,
             bias,
         })
     }
@@ -92,14 +123,57 @@ impl Linear {
     }
 
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let y = match &self.weight_t {
-            Some(wt) => x.matmul(wt)?,
-            None => x.matmul(&self.weight.t()?)?,
+        let y = if self.transposed {
+            x.matmul(&self.weight)?
+        } else {
+            x.matmul(&self.weight.t()?)?
         };
         Ok(match &self.bias {
             Some(b) => y.broadcast_add(b)?,
             None => y,
         })
+    }
+
+    /// Whether the fast kernels may run this layer (inference weights).
+    fn frozen(&self) -> bool {
+        self.transposed && !self.bias.as_ref().is_some_and(|b| b.track_op())
+    }
+
+    /// `out = x W^T + b` (or `out += x W^T + b` when `accumulate`) on rows of `input` values,
+    /// with the kernels.
+    fn forward_rows(&self, x: &[f32], out: &mut [f32], accumulate: bool) -> Result<()> {
+        let input = self.weight.dim(0)?;
+        with_f32(&self.weight, |wt| match &self.bias {
+            Some(b) => with_f32(b, |b| {
+                kernels::linear(x, input, wt, Some(b), out, accumulate);
+                Ok(())
+            }),
+            None => {
+                kernels::linear(x, input, wt, None, out, accumulate);
+                Ok(())
+            }
+        })
+    }
+
+    fn output_dim(&self) -> Result<usize> {
+        Ok(if self.transposed {
+            self.weight.dim(1)?
+        } else {
+            self.weight.dim(0)?
+        })
+    }
+}
+
+/// Call `f` with the values of an f32 tensor as one slice (no copy when it is contiguous).
+fn with_f32<R>(t: &Tensor, f: impl FnOnce(&[f32]) -> Result<R>) -> Result<R> {
+    let t = t.contiguous()?;
+    let (storage, layout) = t.storage_and_layout();
+    let (a, b) = layout
+        .contiguous_offsets()
+        .ok_or_else(|| Error::Internal("a contiguous tensor without offsets".into()))?;
+    match &*storage {
+        candle_core::Storage::Cpu(cpu) => f(&cpu.as_slice::<f32>()?[a..b]),
+        _ => Err(Error::Internal("the engine runs on the CPU only".into())),
     }
 }
 
@@ -224,8 +298,23 @@ impl BiasTable {
 pub struct WindowAttention {
     heads: usize,
     qkv: Linear,
+    /// The q rows of `qkv` carry the `head_dim^-1/2` scale (folded in at load for inference).
+    q_scaled: bool,
     proj: Linear,
     pub bias_table: BiasTable,
+    /// The last geometry this block ran with, and what the kernels need for it.
+    plan: Mutex<Option<Arc<Plan>>>,
+}
+
+/// Everything a block's attention needs for one geometry, made once and reused while the
+/// geometry stays: the gather into windows and its inverse, the shift mask `[windows, N, N]`
+/// and the bias `[heads, N, N]` gathered from the table.
+struct Plan {
+    geometry: BlockGeometry,
+    gather: Vec<u32>,
+    scatter: Vec<u32>,
+    mask: Option<Vec<f32>>,
+    bias: Vec<f32>,
 }
 
 /// Rows of `x` (`[tokens, C]`) picked by `idx`, where index `tokens` is a zero padding row.
@@ -241,6 +330,51 @@ fn u32_tensor(v: Vec<u32>) -> Result<Tensor> {
 }
 
 impl WindowAttention {
+    /// The qkv projection and its q scale: folded into the q rows of the weight and bias for
+    /// inference, kept apart for trainable weights.
+    fn new(
+        src: &dyn WeightSource,
+        dim: usize,
+        heads: usize,
+        part: impl Fn(&str) -> Part,
+    ) -> Result<(Linear, bool)> {
+        let w = src.get(part("weight"), &[3 * dim, dim])?;
+        let b = src.get(part("bias"), &[3 * dim])?;
+        if w.track_op() || b.track_op() {
+            return Ok((Linear::from_weight(&w, Some(b))?, false));
+        }
+        let scale = ((dim / heads) as f64).powf(-0.5);
+        let fold = |t: &Tensor| -> Result<Tensor> {
+            Ok(Tensor::cat(
+                &[(t.narrow(0, 0, dim)? * scale)?, t.narrow(0, dim, 2 * dim)?],
+                0,
+            )?)
+        };
+        Ok((Linear::from_weight(&fold(&w)?, Some(fold(&b)?))?, true))
+    }
+
+    fn frozen(&self) -> bool {
+        self.q_scaled && self.qkv.frozen() && self.proj.frozen()
+    }
+
+    /// The plan for `geo`, from the cache when the geometry is the one of the last run.
+    fn plan(&self, geo: &BlockGeometry) -> Result<Arc<Plan>> {
+        let mut cached = self.plan.lock().unwrap_or_else(|e| e.into_inner());
+        if let Some(p) = cached.as_ref().filter(|p| p.geometry == *geo) {
+            return Ok(p.clone());
+        }
+        let (wh, ww) = geo.window();
+        let plan = Arc::new(Plan {
+            geometry: *geo,
+            gather: geo.gather_index(),
+            scatter: geo.scatter_index(),
+            mask: geo.shift_mask(),
+            bias: self.bias_table.bias(wh, ww)?.flatten_all()?.to_vec1()?,
+        });
+        *cached = Some(plan.clone());
+        Ok(plan)
+    }
+
     /// Attention over the windows of one block. `x`: `[tokens, C]` after LN1. Returns the output
     /// `[tokens, C]` and, when `keep` is set, the attention weights `[windows, heads, N, N]`.
     pub fn forward(
@@ -265,8 +399,11 @@ impl WindowAttention {
             .reshape((n_windows, n, 3, heads, head_dim))?
             .permute((2, 0, 3, 1, 4))?
             .contiguous()?;
-        let scale = (head_dim as f64).powf(-0.5);
-        let q = (qkv.get(0)? * scale)?;
+        let q = if self.q_scaled {
+            qkv.get(0)?
+        } else {
+            (qkv.get(0)? * (head_dim as f64).powf(-0.5))?
+        };
         let k = qkv.get(1)?;
         let v = qkv.get(2)?;
 
@@ -330,13 +467,16 @@ impl Block {
         )?;
         let what = format!("the bias table of stage {stage} block {j}");
         let bias_table = BiasTable::new(table, nominal, &what)?;
+        let (qkv, q_scaled) = WindowAttention::new(src, dim, heads, sub("attn.qkv"))?;
         Ok(Block {
             norm1: LayerNorm::new(src, dim, sub("norm1"))?,
             attn: WindowAttention {
                 heads,
-                qkv: Linear::new(src, dim, 3 * dim, true, sub("attn.qkv"))?,
+                qkv,
+                q_scaled,
                 proj: Linear::new(src, dim, dim, true, sub("attn.proj"))?,
                 bias_table,
+                plan: Mutex::new(None),
             },
             norm2: LayerNorm::new(src, dim, sub("norm2"))?,
             mlp: Mlp {
@@ -352,10 +492,77 @@ impl Block {
         geo: &BlockGeometry,
         keep: bool,
     ) -> Result<(Tensor, Option<Tensor>)> {
+        if self.frozen() && !x.track_op() {
+            return self.forward_frozen(x, geo, keep);
+        }
         let (a, attn) = self.attn.forward(&self.norm1.forward(x)?, geo, keep)?;
         let x = (x + a)?;
         let x = (&x + self.mlp.forward(&self.norm2.forward(&x)?)?)?;
         Ok((x, attn))
+    }
+}
+
+impl Block {
+    fn frozen(&self) -> bool {
+        self.norm1.frozen()
+            && self.attn.frozen()
+            && self.norm2.frozen()
+            && self.mlp.fc1.frozen()
+            && self.mlp.fc2.frozen()
+    }
+
+    /// The inference block on the kernels: norm and gather into windows in one pass, qkv,
+    /// attention per window and head, the projection, back to the grid onto the residual in
+    /// one pass; then norm, fc1 with GELU in place, fc2 accumulated onto the residual.
+    fn forward_frozen(
+        &self,
+        x: &Tensor,
+        geo: &BlockGeometry,
+        keep: bool,
+    ) -> Result<(Tensor, Option<Tensor>)> {
+        let (tokens, c) = x.dims2()?;
+        let plan = self.attn.plan(geo)?;
+        let heads = self.attn.heads;
+        let shape = AttentionShape {
+            windows: geo.n_windows(),
+            n: geo.window_area(),
+            heads,
+            head_dim: c / heads,
+        };
+        let rows = shape.windows * shape.n;
+        let (mut y, probs) = with_f32(x, |xs| {
+            let mut win = vec![0f32; rows * c];
+            self.norm1.gather_rows(xs, c, &plan.gather, &mut win)?;
+            let mut qkv = vec![0f32; rows * 3 * c];
+            self.attn.qkv.forward_rows(&win, &mut qkv, false)?;
+            let mut probs = keep.then(|| vec![0f32; shape.windows * heads * shape.n * shape.n]);
+            kernels::window_attention(
+                &qkv,
+                shape,
+                &plan.bias,
+                plan.mask.as_deref(),
+                &mut win,
+                probs.as_deref_mut(),
+            );
+            drop(qkv);
+            let mut proj = vec![0f32; rows * c];
+            self.attn.proj.forward_rows(&win, &mut proj, false)?;
+            drop(win);
+            let mut y = xs.to_vec();
+            kernels::scatter_add(&mut y, c, &proj, &plan.scatter);
+            Ok((y, probs))
+        })?;
+        let mut normed = vec![0f32; tokens * c];
+        self.norm2.rows(&y, c, &mut normed)?;
+        let mut hidden = vec![0f32; tokens * self.mlp.fc1.output_dim()?];
+        self.mlp.fc1.forward_rows(&normed, &mut hidden, false)?;
+        drop(normed);
+        kernels::gelu_in_place(&mut hidden);
+        self.mlp.fc2.forward_rows(&hidden, &mut y, true)?;
+        let probs = probs
+            .map(|p| Tensor::from_vec(p, (shape.windows, heads, shape.n, shape.n), &Device::Cpu))
+            .transpose()?;
+        Ok((Tensor::from_vec(y, (tokens, c), &Device::Cpu)?, probs))
     }
 }
 
@@ -380,6 +587,23 @@ impl PatchMerging {
     pub fn forward(&self, x: &Tensor, grid: (usize, usize)) -> Result<(Tensor, (usize, usize))> {
         let (_, c) = x.dims2()?;
         let (idx, out) = crate::engine::geometry::merge_index(grid);
+        if self.norm.frozen() && self.reduction.frozen() && !x.track_op() {
+            // Gather the 2x2 neighbours and normalise in one pass, then the reduction.
+            let rows = out.0 * out.1;
+            let mut merged = vec![0f32; rows * 4 * c];
+            with_f32(x, |xs| {
+                with_f32(&self.norm.weight, |w| {
+                    with_f32(&self.norm.bias, |b| {
+                        kernels::concat_layer_norm(xs, c, &idx, 4, w, b, LN_EPS, &mut merged);
+                        Ok(())
+                    })
+                })
+            })?;
+            let dim = self.reduction.output_dim()?;
+            let mut y = vec![0f32; rows * dim];
+            self.reduction.forward_rows(&merged, &mut y, false)?;
+            return Ok((Tensor::from_vec(y, (rows, dim), &Device::Cpu)?, out));
+        }
         let merged = gather_rows(x, idx)?.reshape((out.0 * out.1, 4 * c))?;
         let y = self.reduction.forward(&self.norm.forward(&merged)?)?;
         Ok((y, out))

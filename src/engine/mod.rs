@@ -9,6 +9,7 @@ pub mod checkpoint;
 pub mod config;
 pub mod geometry;
 pub mod input;
+pub mod kernels;
 pub mod layers;
 pub mod model;
 pub mod session;

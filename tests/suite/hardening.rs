@@ -899,7 +899,7 @@ fn invalid_values_exit_2_from_the_argument_parser() {
 /// around `mullion summary --weights sample-data/demo.safetensors --image IMG --max-memory-gb
 /// 100` on square PNGs (8-bit RGB) of these sides, on this project's 2-core machine; the
 /// measurement and how to repeat it are in DEVELOPERS.md ("Memory estimate").
-const MEASURED_PEAK_KIB: [(u32, u64); 2] = [(3000, 1_141_732), (10000, 12_256_112)];
+const MEASURED_PEAK_KIB: [(u32, u64); 2] = [(3000, 808_316), (10000, 8_744_204)];
 
 #[test]
 fn the_memory_estimate_is_within_ten_percent_of_the_measured_peak() {
