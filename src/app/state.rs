@@ -826,7 +826,7 @@ impl Workbench {
                 let variant = variant
                     .ok()
                     .flatten()
-                    .and_then(|_| self.variant_pass.as_ref())
+                    .and(self.variant_pass.as_ref())
                     .map(|(k, o)| (k.as_str(), o));
                 let shape = self.weights.as_ref().map(|w| w.model.config.shape());
                 let passes = Passes {

@@ -77,12 +77,15 @@ pub fn border_profile(values: &[f32], rows: usize, cols: usize) -> Result<Vec<Pr
         .collect())
 }
 
+/// A block's window size and its window-position profile.
+pub type WindowProfile = ((usize, usize), Vec<ProfileBin>);
+
 /// One stage's profiles of a map: the window-position profiles of its first regular and first
-/// shifted block (each with its window size), and the border profile.
+/// shifted block, and the border profile.
 #[derive(Clone, Debug, PartialEq)]
 pub struct StageProfiles {
-    pub regular: Option<((usize, usize), Vec<ProfileBin>)>,
-    pub shifted: Option<((usize, usize), Vec<ProfileBin>)>,
+    pub regular: Option<WindowProfile>,
+    pub shifted: Option<WindowProfile>,
     pub border: Vec<ProfileBin>,
 }
 
@@ -91,7 +94,7 @@ pub fn stage_profiles(
     values: &[f32],
     sg: &crate::engine::geometry::StageGeometry,
 ) -> Result<StageProfiles> {
-    let of = |shifted: bool| -> Result<Option<((usize, usize), Vec<ProfileBin>)>> {
+    let of = |shifted: bool| -> Result<Option<WindowProfile>> {
         sg.blocks
             .iter()
             .find(|b| b.is_shifted() == shifted)

@@ -103,9 +103,12 @@ pub fn sorted_rows(rows: &[DriftRow], sort: Column, descending: bool) -> Vec<&Dr
     out
 }
 
+/// (stage, block) pairs, or (stage, position along the chart).
+type Places = Vec<(usize, usize)>;
+
 /// Blocks in model order: (stage, block) -> position along the chart, and where each stage
 /// starts.
-fn positions(groups: &[GroupDrift]) -> (Vec<(usize, usize)>, Vec<(usize, usize)>) {
+fn positions(groups: &[GroupDrift]) -> (Places, Places) {
     let mut blocks: Vec<(usize, usize)> = groups
         .iter()
         .filter_map(|g| g.block.map(|b| (g.stage, b)))
