@@ -237,6 +237,13 @@ impl Workbench {
             .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send>)
     }
 
+    /// The wake-up a worker job calls after every event (a repaint request).
+    fn job_wake(&self) -> Option<Box<dyn Fn() + Send + Sync>> {
+        self.repaint
+            .clone()
+            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>)
+    }
+
     fn push(&mut self, level: Level, text: String) {
         self.messages.push(Message { level, text });
         if self.messages.len() > MESSAGE_CAP {
@@ -632,10 +639,7 @@ impl Workbench {
             self.error(msg);
             return;
         }
-        let wake: Option<Box<dyn Fn() + Send + Sync>> = self
-            .repaint
-            .clone()
-            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>);
+        let wake = self.job_wake();
         let job = Job::spawn_image(
             model,
             pixels,
@@ -934,10 +938,7 @@ impl Workbench {
         let (Some(img), Some(w)) = (&self.image, &self.weights) else {
             return;
         };
-        let wake: Option<Box<dyn Fn() + Send + Sync>> = self
-            .repaint
-            .clone()
-            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>);
+        let wake = self.job_wake();
         let job = Job::spawn_image(
             w.model.clone(),
             img.pixels.clone(),
@@ -1033,10 +1034,7 @@ impl Workbench {
             }
         }
         let (input, norm) = (shown.input.clone(), self.settings.norm);
-        let wake: Option<Box<dyn Fn() + Send + Sync>> = self
-            .repaint
-            .clone()
-            .map(|ctx| Box::new(move || ctx.request_repaint()) as Box<dyn Fn() + Send + Sync>);
+        let wake = self.job_wake();
         let job = Job::spawn_with(
             w.model.clone(),
             variant_options(v, semantics),

@@ -1,7 +1,7 @@
 //! Helpers every test module shares: running the `mullion` binary, and paths to the bundled
 //! sample data and the committed reference fixtures.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::process::Command;
 
 /// What one run of the binary gave.
@@ -69,4 +69,26 @@ pub fn rel_diff_f64(got: &candle_core::Tensor, want: &candle_core::Tensor) -> f6
         - want.to_dtype(candle_core::DType::F64).unwrap())
     .unwrap();
     max_abs(&d) / max_abs(want).max(f64::MIN_POSITIVE)
+}
+
+/// A CSV file as rows of column name -> text.
+pub fn read_csv(path: &Path) -> Vec<std::collections::BTreeMap<String, String>> {
+    let mut r = csv::Reader::from_path(path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let headers: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
+    r.records()
+        .map(|rec| {
+            headers
+                .iter()
+                .cloned()
+                .zip(rec.unwrap().iter().map(String::from))
+                .collect()
+        })
+        .collect()
+}
+
+/// Column `key` of a CSV row as a number.
+pub fn num(row: &std::collections::BTreeMap<String, String>, key: &str) -> f64 {
+    row[key]
+        .parse()
+        .unwrap_or_else(|_| panic!("{key} = '{}'", row[key]))
 }

@@ -7,6 +7,7 @@
 //! and `mullion compare` / `mullion merge` end to end on the bundled demo pair.
 
 use crate::common::{fixtures, mullion, sample};
+use crate::common::{num, read_csv};
 use candle_core::{DType, Device, Tensor};
 use mullion::analysis::compare::{linear_cka, token_cosines, weight_drift, CkaSums};
 use mullion::analysis::{
@@ -275,26 +276,6 @@ fn same_weights_two_layouts(dir: &Path) -> (PathBuf, PathBuf) {
     let hf = dir.join("tf4.safetensors");
     save(tf, &hf);
     (timm, hf)
-}
-
-fn read_csv(path: &Path) -> Vec<BTreeMap<String, String>> {
-    let mut r = csv::Reader::from_path(path).unwrap();
-    let headers: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
-    r.records()
-        .map(|rec| {
-            headers
-                .iter()
-                .cloned()
-                .zip(rec.unwrap().iter().map(String::from))
-                .collect()
-        })
-        .collect()
-}
-
-fn num(row: &BTreeMap<String, String>, key: &str) -> f64 {
-    row[key]
-        .parse()
-        .unwrap_or_else(|_| panic!("{key} = '{}'", row[key]))
 }
 
 #[test]

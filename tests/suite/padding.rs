@@ -7,6 +7,7 @@
 //! with numpy 2.4.6 from those libraries' own forward passes. Each check names its source.
 
 use crate::common::{fixtures, mullion, rel_diff_f64 as rel_diff};
+use crate::common::{num, read_csv};
 use candle_core::{Device, Tensor};
 use serde_json::Value;
 use std::collections::HashMap;
@@ -50,25 +51,6 @@ fn flags(source: &str) -> Vec<&'static str> {
 
 fn close(got: f64, want: f64) -> bool {
     (got - want).abs() <= TOLERANCE * want.abs().max(1e-12)
-}
-
-/// A CSV written by Mullion as rows of named fields.
-fn read_csv(path: &Path) -> Vec<HashMap<String, String>> {
-    let text = std::fs::read_to_string(path).unwrap();
-    let mut lines = text.lines();
-    let head: Vec<String> = lines.next().unwrap().split(',').map(String::from).collect();
-    lines
-        .map(|l| {
-            head.iter()
-                .cloned()
-                .zip(l.split(',').map(String::from))
-                .collect()
-        })
-        .collect()
-}
-
-fn num(row: &HashMap<String, String>, key: &str) -> f64 {
-    row[key].parse().unwrap()
 }
 
 /// Run `mullion attention` for one block under `source`'s semantics and load what it wrote.

@@ -6,11 +6,11 @@
 //! timm 1.0.31 and transformers 5.23.0.
 
 use crate::common::{mullion, sample};
+use crate::common::{num, read_csv};
 use crate::kit::{harness, type_path, wait};
 use egui_kittest::kittest::Queryable;
 use egui_kittest::Harness;
 use mullion::app::Window;
-use std::collections::BTreeMap;
 
 fn choose_kind(h: &mut Harness<'_, Window>, label: &str) {
     h.get_by_label("kind").click();
@@ -18,24 +18,6 @@ fn choose_kind(h: &mut Harness<'_, Window>, label: &str) {
     h.get_by_label(label).click();
     h.run_steps(2);
     wait(h);
-}
-
-fn read_csv(path: &std::path::Path) -> Vec<BTreeMap<String, String>> {
-    let mut r = csv::Reader::from_path(path).unwrap();
-    let headers: Vec<String> = r.headers().unwrap().iter().map(String::from).collect();
-    r.records()
-        .map(|rec| {
-            headers
-                .iter()
-                .cloned()
-                .zip(rec.unwrap().iter().map(String::from))
-                .collect()
-        })
-        .collect()
-}
-
-fn num(r: &BTreeMap<String, String>, k: &str) -> f64 {
-    r[k].parse().unwrap()
 }
 
 /// Per stage, the mean of the raw map on screen.
