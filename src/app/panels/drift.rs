@@ -130,6 +130,8 @@ impl DriftPanel {
         egui::Window::new("Weight drift, A to B")
             .open(&mut open)
             .default_size([760.0, 560.0])
+            // Below the top bar, never over its buttons.
+            .default_pos([280.0, 200.0])
             .vscroll(true)
             .show(ui.ctx(), |ui| self.contents(ui, bench));
         if open {

@@ -116,6 +116,8 @@ impl ProfilesPanel {
         egui::Window::new("Seams and border")
             .open(&mut open)
             .default_size([560.0, 320.0])
+            // Below the top bar and left of the regions panel, never over the buttons.
+            .default_pos([300.0, 240.0])
             .show(ui.ctx(), |ui| contents(ui, bench));
         if open {
             Vec::new()

@@ -80,7 +80,9 @@ impl SourceBar {
                 {
                     out.push(Action::ShowLoadReport(true));
                 }
-                ui.separator();
+                // The base slot and what follows start a line of their own, so the slot is
+                // never squeezed against the window's edge.
+                ui.end_row();
                 self.base_slot(ui, bench, &mut out);
                 ui.separator();
                 let can_save = bench.pictures.textures.is_some();
@@ -102,13 +104,14 @@ impl SourceBar {
     /// The second checkpoint: what it is, open and close it, and its weight drift. Dropping a
     /// checkpoint on it makes that the base.
     fn base_slot(&mut self, ui: &mut egui::Ui, bench: &Workbench, out: &mut Vec<Action>) {
-        let zone = ui.scope(|ui| match &bench.base {
-            Some(b) => {
-                ui.label(format!("base (A): {}", b.name));
-            }
-            None => {
-                ui.label("base (A): none — drop a checkpoint here to compare");
-            }
+        // One line that never wraps: squeezed at the end of a row, a wrapping label would grow
+        // a letter-wide column and push the whole bar down.
+        let text = match &bench.base {
+            Some(b) => format!("base (A): {}", b.name),
+            None => "base (A): none — drop a checkpoint here to compare".into(),
+        };
+        let zone = ui.scope(|ui| {
+            ui.add(egui::Label::new(text).wrap_mode(egui::TextWrapMode::Extend));
         });
         self.base_zone = Some(zone.response.rect);
         if ui.button("Open base (A)…").clicked() {
