@@ -1,12 +1,13 @@
-"""Time the PyTorch reference forward pass of Swin-T, to set beside our own
-binary's timings.
+"""Time the PyTorch reference forward pass of Swin-T or Swin-B, to set beside
+our own binary's timings.
 
-    python tests/reference/bench_torch.py [--size 224] [--threads 2] [--runs 10]
+    python tests/reference/bench_torch.py [--preset tiny|base] [--size 224|HxW] [--threads 2] [--runs 10]
 
-Builds timm `swin_tiny_patch4_window7_224` and a transformers `SwinModel` with
-the Swin-T configuration (embed 96, depths 2-2-6-2, heads 3-6-12-24, window 7),
-both randomly initialised (nothing is downloaded), eval mode, float32, no
-grad, batch 1, a `size x size` input. Each library runs in its own child
+Builds timm `swin_{tiny,base}_patch4_window7_224` and a transformers `SwinModel`
+with the same configuration (Swin-T: embed 96, depths 2-2-6-2, heads 3-6-12-24;
+Swin-B: embed 128, depths 2-2-18-2, heads 4-8-16-32; window 7; Liu et al. 2021,
+Table 1), both randomly initialised (nothing is downloaded), eval mode, float32,
+no grad, batch 1, an `H x W` input (`--size 224` means 224x224). Each library runs in its own child
 process so that its peak RSS is its own. Prints one line per library:
 
     timm 1.0.31, torch 2.15.0: size=224 threads=2 runs=10 median_ms=... peak_rss_mb=...
@@ -23,38 +24,49 @@ import sys
 import time
 
 
-def build_timm(size):
+PRESETS = {
+    "tiny": dict(embed_dim=96, depths=[2, 2, 6, 2], num_heads=[3, 6, 12, 24]),
+    "base": dict(embed_dim=128, depths=[2, 2, 18, 2], num_heads=[4, 8, 16, 32]),
+}
+
+
+def parse_size(text):
+    h, _, w = text.lower().partition("x")
+    return (int(h), int(w or h))
+
+
+def build_timm(preset, size):
     import timm
     import torch
 
-    m = timm.create_model("swin_tiny_patch4_window7_224", pretrained=False, img_size=size)
+    m = timm.create_model(f"swin_{preset}_patch4_window7_224", pretrained=False, img_size=size)
     return m, lambda x: m.forward_features(x), f"timm {timm.__version__}, torch {torch.__version__.split('+')[0]}"
 
 
-def build_transformers(size):
+def build_transformers(preset, size):
     import torch
     import transformers
     from transformers import SwinConfig, SwinModel
 
-    cfg = SwinConfig(image_size=size, patch_size=4, embed_dim=96, depths=[2, 2, 6, 2],
-                     num_heads=[3, 6, 12, 24], window_size=7, mlp_ratio=4.0)
+    cfg = SwinConfig(image_size=list(size), patch_size=4, window_size=7, mlp_ratio=4.0,
+                     **PRESETS[preset])
     m = SwinModel(cfg, add_pooling_layer=False)
     return m, lambda x: m(pixel_values=x).last_hidden_state, \
         f"transformers {transformers.__version__}, torch {torch.__version__.split('+')[0]}"
 
 
-def child(lib, size, threads, runs, warmup):
+def child(lib, preset, size, threads, runs, warmup):
     import torch
 
     torch.set_num_threads(threads)
     torch.manual_seed(0)
     try:
-        model, fwd, ver = (build_timm if lib == "timm" else build_transformers)(size)
+        model, fwd, ver = (build_timm if lib == "timm" else build_transformers)(preset, size)
     except ImportError as e:
         print(json.dumps({"lib": lib, "skipped": str(e)}))
         return
     model.eval()
-    x = torch.randn(1, 3, size, size)
+    x = torch.randn(1, 3, size[0], size[1])
     times = []
     with torch.inference_mode():
         for _ in range(warmup):
@@ -71,7 +83,8 @@ def child(lib, size, threads, runs, warmup):
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--size", type=int, default=224)
+    ap.add_argument("--preset", choices=sorted(PRESETS), default="tiny")
+    ap.add_argument("--size", default="224", help="side in pixels, or HxW")
     ap.add_argument("--threads", type=int, default=2)
     ap.add_argument("--runs", type=int, default=10)
     ap.add_argument("--warmup", type=int, default=2)
@@ -80,10 +93,10 @@ def main():
     ap.add_argument("--child", choices=["timm", "transformers"], help=argparse.SUPPRESS)
     a = ap.parse_args()
     if a.child:
-        child(a.child, a.size, a.threads, a.runs, a.warmup)
+        child(a.child, a.preset, parse_size(a.size), a.threads, a.runs, a.warmup)
         return
     for lib in a.lib or ["timm", "transformers"]:
-        cmd = [sys.executable, __file__, "--child", lib, "--size", str(a.size),
+        cmd = [sys.executable, __file__, "--child", lib, "--preset", a.preset, "--size", a.size,
                "--threads", str(a.threads), "--runs", str(a.runs), "--warmup", str(a.warmup)]
         res = subprocess.run(cmd, capture_output=True, text=True)
         lines = [l for l in res.stdout.splitlines() if l.startswith("{")]
@@ -94,7 +107,7 @@ def main():
         if "skipped" in r:
             print(f"{lib}: skipped ({r['skipped']})")
             continue
-        print(f"{r['version']}: size={a.size} threads={a.threads} runs={a.runs} "
+        print(f"{r['version']}: preset={a.preset} size={a.size} threads={a.threads} runs={a.runs} "
               f"median_ms={r['median_ms']:.1f} min_ms={r['min_ms']:.1f} peak_rss_mb={r['peak_rss_mb']:.0f}")
 
 
