@@ -652,7 +652,7 @@ mod tests {
         let labels = token_labels(&scene, (7, 7), 32);
         assert_eq!(labels.len(), 49);
         assert!(
-            labels.iter().any(|&l| l == 2),
+            labels.contains(&2),
             "some token centre on a healthy seedling"
         );
         // A grid larger than the image marks the overhang as unscored.

@@ -78,8 +78,9 @@ fn draw_until_shown(h: &mut Harness<'_, Window>, limit: Duration) -> WhileRunnin
             400.0 + (k * 37.0) % 500.0,
             150.0 + (k * 23.0) % 500.0,
         ));
-        if k as usize % 10 == 0 {
-            h.event(wheel(if k as usize % 20 == 0 { 60.0 } else { -60.0 }));
+        let n = k as usize;
+        if n.is_multiple_of(10) {
+            h.event(wheel(if n.is_multiple_of(20) { 60.0 } else { -60.0 }));
         }
         h.step();
         std::thread::sleep(Duration::from_millis(20));

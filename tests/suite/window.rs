@@ -231,7 +231,7 @@ fn draw_name_stats_undo_redo() {
         .bench
         .open_paths(&[fixtures().join("tf4_odd/weights.safetensors")]);
     wait(&mut h);
-    h.state_mut().bench.open_paths(&[img.clone()]);
+    h.state_mut().bench.open_paths(std::slice::from_ref(&img));
     wait(&mut h);
 
     // A label of our own, then the box tool.

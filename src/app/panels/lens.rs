@@ -177,8 +177,10 @@ mod tests {
 
     #[test]
     fn zooming_keeps_the_point_under_the_pointer() {
-        let mut lens = Lens::default();
-        lens.pan = Vec2::new(30.0, -10.0);
+        let mut lens = Lens {
+            pan: Vec2::new(30.0, -10.0),
+            ..Lens::default()
+        };
         let offset = Vec2::new(100.0, 40.0);
         // The picture point under the pointer, in picture units (distance from its centre
         // divided by the zoom), is the same before and after.
