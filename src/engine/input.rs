@@ -40,7 +40,10 @@ impl Normalisation {
     };
 
     pub fn validate(&self) -> Result<()> {
-        if self.std.iter().any(|&s| !(s.is_finite() && s.is_sign_positive() && s != 0.0))
+        if self
+            .std
+            .iter()
+            .any(|&s| !(s.is_finite() && s.is_sign_positive() && s != 0.0))
             || self.mean.iter().any(|m| !m.is_finite())
         {
             return Err(Error::BadArgument(format!(

@@ -9,6 +9,7 @@ mod commands;
 mod compare;
 mod compare_window;
 mod demo;
+mod families;
 mod hardening;
 mod inspector;
 mod kit;
