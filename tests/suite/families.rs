@@ -10,8 +10,9 @@
 //! al. 2019, eq. 2, CKA(X, X) = 1) and zero drift under names in timm >= 0.9's spelling,
 //! padding by 0 pixels changes nothing, and every attention row sums to 1.
 
-use crate::common::{fixtures, mullion, num, read_csv};
+use crate::common::{mullion, num, read_csv};
 use crate::kit::{harness, type_path};
+use crate::reference_outputs::{case, case_names};
 use serde_json::Value;
 use std::path::{Path, PathBuf};
 
@@ -26,21 +27,10 @@ struct Case {
 }
 
 fn cases() -> Vec<Case> {
-    let list: Value =
-        serde_json::from_str(&std::fs::read_to_string(fixtures().join("cases.json")).unwrap())
-            .unwrap();
-    let names = list
-        .as_array()
-        .or_else(|| list["cases"].as_array())
-        .expect("cases.json lists cases");
-    names
-        .iter()
-        .map(|n| {
-            let name = n.as_str().unwrap().to_string();
-            let dir = fixtures().join(&name);
-            let case: Value =
-                serde_json::from_str(&std::fs::read_to_string(dir.join("case.json")).unwrap())
-                    .unwrap();
+    case_names()
+        .into_iter()
+        .map(|name| {
+            let (dir, case) = case(&name);
             let mut flags = Vec::new();
             for key in ["pad_order", "small_stage"] {
                 if let Some(v) = case[key].as_str() {

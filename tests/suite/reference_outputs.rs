@@ -16,7 +16,7 @@ use std::path::{Path, PathBuf};
 
 const TOLERANCE: f32 = 1e-5;
 
-fn case_names() -> Vec<String> {
+pub fn case_names() -> Vec<String> {
     let list: Value =
         serde_json::from_str(&std::fs::read_to_string(fixtures().join("cases.json")).unwrap())
             .unwrap();
@@ -34,7 +34,7 @@ fn case_names() -> Vec<String> {
         .collect()
 }
 
-fn case(name: &str) -> (PathBuf, Value) {
+pub fn case(name: &str) -> (PathBuf, Value) {
     let dir = fixtures().join(name);
     let v = serde_json::from_str(&std::fs::read_to_string(dir.join("case.json")).unwrap()).unwrap();
     (dir, v)
