@@ -164,6 +164,7 @@ fn layouts_and_default_semantics_are_detected() {
             "original" => "Original",
             "transformers4" => "Transformers4",
             "transformers5" => "Transformers5",
+            "openmmlab3" => "OpenMmlab3",
             other => panic!("{name}: unknown layout {other}"),
         };
         assert_eq!(format!("{:?}", ckpt.layout.kind), want_layout, "{name}");
