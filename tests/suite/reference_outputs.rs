@@ -333,6 +333,7 @@ fn features_command_defaults_reproduce_the_library() {
         "timm_odd",
         "detector_prefixed",
         "pickle_nested_bf16",
+        "toolkit3_nested",
     ] {
         let (dir, case) = case(name);
         let out = out_dir.path().join(format!("{name}.safetensors"));
@@ -355,6 +356,41 @@ fn features_command_defaults_reproduce_the_library() {
             };
             assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
         }
+    }
+}
+
+/// The OpenMMLab converters' unfold permutation (`correct_unfold_reduction_order` /
+/// `correct_unfold_norm_order`, mmdetection 3.x mmdet/models/backbones/swin.py), run by
+/// tests/reference/make_fixtures.py in torch 2.15.0 on a small numeric example (case.json of
+/// toolkit3_nested, "unfold_example"), is undone exactly by the loader's reordering.
+#[test]
+fn unfold_order_is_undone_as_the_converter_did_it() {
+    let (_, case) = case("toolkit3_nested");
+    let ex = &case["unfold_example"];
+    let matrix = |v: &Value| -> Tensor {
+        let rows: Vec<Vec<f32>> = serde_json::from_value(v.clone()).unwrap();
+        let (r, c) = (rows.len(), rows[0].len());
+        Tensor::from_vec(rows.concat(), (r, c), &Device::Cpu).unwrap()
+    };
+    let vector = |v: &Value| -> Tensor {
+        let x: Vec<f32> = serde_json::from_value(v.clone()).unwrap();
+        let n = x.len();
+        Tensor::from_vec(x, n, &Device::Cpu).unwrap()
+    };
+    for (converted, timm) in [
+        (matrix(&ex["converted"]), matrix(&ex["timm_order"])),
+        (vector(&ex["norm_converted"]), vector(&ex["norm_timm_order"])),
+    ] {
+        assert_ne!(
+            converted.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            timm.flatten_all().unwrap().to_vec1::<f32>().unwrap()
+        );
+        let back = mullion::engine::checkpoint::from_unfold_order(&converted).unwrap();
+        assert_eq!(back.dims(), timm.dims());
+        assert_eq!(
+            back.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            timm.flatten_all().unwrap().to_vec1::<f32>().unwrap()
+        );
     }
 }
 
