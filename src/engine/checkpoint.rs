@@ -975,8 +975,13 @@ pub fn square_window(rows: usize) -> Option<usize> {
 
 /// Why a tensor in the file was not used.
 pub fn ignored_reason(name: &str) -> &'static str {
+    let any = |parts: &[&str]| parts.iter().any(|p| name.contains(p));
     if name.ends_with("relative_position_index") || name.ends_with("attn_mask") {
         "buffer, recomputed"
+    } else if any(&["decode_head.", "auxiliary_head."]) {
+        "segmentation head"
+    } else if any(&["rpn_head.", "roi_head.", "bbox_head.", "mask_head."]) {
+        "detection head"
     } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
         "head / classifier"
     } else if name.contains("neck") || name.contains("fpn") || name.contains("decode") {
@@ -997,6 +1002,25 @@ mod tests {
         assert_eq!(square_window(1), Some(1));
         assert_eq!(square_window(168), None);
         assert_eq!(square_window(144), None); // 12^2: even side is no (2M-1)^2
+    }
+
+    #[test]
+    fn ignored_tensors_of_detectors_and_segmenters_have_reasons() {
+        // Module names of mmdetection / mmsegmentation 3.x models around the backbone.
+        for (name, why) in [
+            ("rpn_head.rpn_conv.weight", "detection head"),
+            ("roi_head.bbox_head.fc_cls.weight", "detection head"),
+            ("decode_head.conv_seg.weight", "segmentation head"),
+            ("auxiliary_head.conv_seg.bias", "segmentation head"),
+            ("neck.lateral_convs.0.conv.weight", "neck / decoder"),
+            ("head.fc.weight", "head / classifier"),
+            (
+                "backbone.stages.0.blocks.0.attn.w_msa.relative_position_index",
+                "buffer, recomputed",
+            ),
+        ] {
+            assert_eq!(ignored_reason(name), why, "{name}");
+        }
     }
 
     #[test]

@@ -454,3 +454,30 @@ fn absolute_position_embedding_is_refused() {
         "{err}"
     );
 }
+
+/// `mullion inspect` on the toolkit fixture (OpenMMLab 3.x layout, tests/fixtures/toolkit3_nested)
+/// names the layout, the nesting, the padding defaults of mmdet 3.x's ShiftWindowMSA (pad, then
+/// shift; the window never clamped) and why each neck and head tensor is left out.
+#[test]
+fn inspect_names_the_toolkit_layout() {
+    let path = crate::common::fixtures().join("toolkit3_nested/weights.pth");
+    let run = crate::common::mullion(&["inspect", path.to_str().unwrap()]);
+    assert!(run.ok(), "{}", run.stderr);
+    for needle in [
+        "nested under 'state_dict'",
+        "OpenMMLab detection / segmentation toolkits 3.x",
+        "prefix 'backbone.'",
+        "depths [2, 2, 2]",
+        "heads [1, 2, 4]",
+        "per-stage output norms: present",
+        "pad-then-shift",
+        "'pad-up'",
+        "1 buffers",
+        "neck.lateral_convs.0.conv.weight (neck / decoder)",
+        "rpn_head.rpn_conv.weight (detection head)",
+        "roi_head.bbox_head.fc_cls.weight (detection head)",
+        "0 missing",
+    ] {
+        assert!(run.stdout.contains(needle), "missing '{needle}' in:\n{}", run.stdout);
+    }
+}
