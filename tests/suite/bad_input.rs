@@ -481,3 +481,32 @@ fn inspect_names_the_toolkit_layout() {
         assert!(run.stdout.contains(needle), "missing '{needle}' in:\n{}", run.stdout);
     }
 }
+
+/// An OpenMMLab patch embedding without any `stages.*` blocks (e.g. a plain vision transformer
+/// from the same toolkits, whose blocks are `layers.{i}`) is no shifted-window backbone: the
+/// message names the tensor and what is missing beside it.
+#[test]
+fn toolkit_embedding_without_stages_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let zeros = |shape: &[usize]| {
+        Tensor::zeros(shape, candle_core::DType::F32, &candle_core::Device::Cpu).unwrap()
+    };
+    let mut sd = BTreeMap::new();
+    sd.insert(
+        "backbone.patch_embed.projection.weight".to_string(),
+        zeros(&[8, 3, 16, 16]),
+    );
+    sd.insert(
+        "backbone.layers.0.attn.qkv.weight".to_string(),
+        zeros(&[24, 8]),
+    );
+    let path = dir.path().join("vit.safetensors");
+    write(&sd, &path);
+    let msg = load_error(&path);
+    assert!(
+        msg.contains("vit.safetensors")
+            && msg.contains("backbone.patch_embed.projection.weight")
+            && msg.contains("stages.*.blocks.*"),
+        "{msg}"
+    );
+}
