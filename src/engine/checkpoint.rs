@@ -1081,7 +1081,10 @@ mod tests {
                 Part::block(3, 0, "mlp.fc2.bias"),
                 "stages.3.blocks.0.ffn.layers.1.bias",
             ),
-            (Part::block(0, 1, "norm2.weight"), "stages.0.blocks.1.norm2.weight"),
+            (
+                Part::block(0, 1, "norm2.weight"),
+                "stages.0.blocks.1.norm2.weight",
+            ),
             (Part::StageNorm(2, "weight".into()), "norm2.weight"),
         ];
         for (part, name) in cases {

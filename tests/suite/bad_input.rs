@@ -409,7 +409,10 @@ fn toolkit_merging_width_not_4c() {
         let (code, err) = mullion(&args);
         assert_eq!(code, 1, "{args:?}: {err}");
         for needle in ["narrow_merge.safetensors", key, "[16, 24]", "4 x 8 = 32"] {
-            assert!(err.contains(needle), "{args:?}: missing '{needle}' in {err}");
+            assert!(
+                err.contains(needle),
+                "{args:?}: missing '{needle}' in {err}"
+            );
         }
     }
     assert!(!out.exists());
@@ -441,7 +444,12 @@ fn absolute_position_embedding_is_refused() {
     // mmdet 3.x SwinTransformer(use_abs_pos_embed=True): `absolute_pos_embed` [1, L, C].
     sd.insert(
         "backbone.absolute_pos_embed".to_string(),
-        Tensor::zeros((1, 3136, 8), candle_core::DType::F32, &candle_core::Device::Cpu).unwrap(),
+        Tensor::zeros(
+            (1, 3136, 8),
+            candle_core::DType::F32,
+            &candle_core::Device::Cpu,
+        )
+        .unwrap(),
     );
     let path = dir.path().join("ape.safetensors");
     write(&sd, &path);
@@ -478,7 +486,11 @@ fn inspect_names_the_toolkit_layout() {
         "roi_head.bbox_head.fc_cls.weight (detection head)",
         "0 missing",
     ] {
-        assert!(run.stdout.contains(needle), "missing '{needle}' in:\n{}", run.stdout);
+        assert!(
+            run.stdout.contains(needle),
+            "missing '{needle}' in:\n{}",
+            run.stdout
+        );
     }
 }
 

@@ -379,7 +379,10 @@ fn unfold_order_is_undone_as_the_converter_did_it() {
     };
     for (converted, timm) in [
         (matrix(&ex["converted"]), matrix(&ex["timm_order"])),
-        (vector(&ex["norm_converted"]), vector(&ex["norm_timm_order"])),
+        (
+            vector(&ex["norm_converted"]),
+            vector(&ex["norm_timm_order"]),
+        ),
     ] {
         assert_ne!(
             converted.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
