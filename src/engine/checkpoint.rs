@@ -973,6 +973,20 @@ pub fn square_window(rows: usize) -> Option<usize> {
     (r.checked_mul(r) == Some(rows) && r % 2 == 1).then_some(r.div_ceil(2))
 }
 
+/// `norm{i}.weight` / `.bias` outside any block: a per-stage output norm (detection and
+/// segmentation backbones keep one for each stage they output, e.g. only stages 1 to 3).
+fn is_stage_norm(name: &str) -> bool {
+    let mut rev = name.rsplit('.');
+    let (Some(wb), Some(module)) = (rev.next(), rev.next()) else {
+        return false;
+    };
+    matches!(wb, "weight" | "bias")
+        && !name.contains(".blocks.")
+        && module
+            .strip_prefix("norm")
+            .is_some_and(|i| !i.is_empty() && i.bytes().all(|b| b.is_ascii_digit()))
+}
+
 /// Why a tensor in the file was not used.
 pub fn ignored_reason(name: &str) -> &'static str {
     let any = |parts: &[&str]| parts.iter().any(|p| name.contains(p));
@@ -982,6 +996,8 @@ pub fn ignored_reason(name: &str) -> &'static str {
         "segmentation head"
     } else if any(&["rpn_head.", "roi_head.", "bbox_head.", "mask_head."]) {
         "detection head"
+    } else if is_stage_norm(name) {
+        "per-stage output norm; used only when every stage has one"
     } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
         "head / classifier"
     } else if name.contains("neck") || name.contains("fpn") || name.contains("decode") {
@@ -1014,6 +1030,12 @@ mod tests {
             ("auxiliary_head.conv_seg.bias", "segmentation head"),
             ("neck.lateral_convs.0.conv.weight", "neck / decoder"),
             ("head.fc.weight", "head / classifier"),
+            // mmdet 3.x RetinaNet configs output stages 1 to 3 only (out_indices=(1, 2, 3)).
+            (
+                "backbone.norm1.weight",
+                "per-stage output norm; used only when every stage has one",
+            ),
+            ("backbone.norm.weight", "not part of the backbone"),
             (
                 "backbone.stages.0.blocks.0.attn.w_msa.relative_position_index",
                 "buffer, recomputed",

@@ -323,6 +323,51 @@ fn the_other_semantics_do_not_match() {
     );
 }
 
+/// The toolkit fixture catches a loader that forgets the unfold reordering: its tensors,
+/// written unchanged under the original release's names (same block names, merging at the end
+/// of a stage, but in timm's channel order), match the reference up to stage 0 and miss it by
+/// far from stage 1 on, where patch merging comes in.
+#[test]
+fn toolkit_fixture_needs_the_unfold_reorder() {
+    use mullion::engine::checkpoint::Layout;
+    use mullion::engine::model::required_parts;
+    use mullion::engine::{LayoutKind, Part};
+    let (dir, case) = case("toolkit3_nested");
+    let file = dir.join(case["weights"].as_str().unwrap());
+    let ckpt = Checkpoint::open(&file).unwrap();
+    let raw: HashMap<String, Tensor> =
+        candle_core::pickle::read_all_with_key(&file, Some("state_dict"))
+            .unwrap()
+            .into_iter()
+            .collect();
+    let original = Layout {
+        kind: LayoutKind::Original,
+        prefix: "backbone.".into(),
+    };
+    let cfg = ckpt.infer_config(&ConfigOverride::default()).unwrap();
+    let mut parts = required_parts(&cfg);
+    for i in 0..cfg.depths.len() {
+        parts.extend(["weight", "bias"].map(|s| Part::StageNorm(i, s.into())));
+    }
+    let mut out = HashMap::new();
+    for part in &parts {
+        let from = ckpt.file_names(part).concat();
+        out.insert(original.file_names(part).concat(), raw[&from].clone());
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    candle_core::safetensors::save(&out, tmp.path().join("weights.safetensors")).unwrap();
+    std::fs::copy(dir.join("input.png"), tmp.path().join("input.png")).unwrap();
+    let mut unordered = case.clone();
+    unordered["weights"] = "weights.safetensors".into();
+    let run = run_case(tmp.path(), &unordered, semantics_of(&case));
+    let want = expected(&dir, &case);
+    assert!(rel_diff(&run.outputs["stage0"], &want["stage0"]) <= TOLERANCE);
+    for key in ["stage1", "stage2", "stage1_norm"] {
+        let d = rel_diff(&run.outputs[key], &want[key]);
+        assert!(d > 100.0 * TOLERANCE, "{key}: {d:.2e}");
+    }
+}
+
 /// The `features` command, with no options, reproduces each library's own computation: the
 /// contract other checks rely on (NHWC `[1, H, W, C]` tensors `embed`, `stage0`..).
 #[test]
