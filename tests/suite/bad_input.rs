@@ -368,6 +368,11 @@ fn inspect_reports_the_load() {
     assert!(text.contains(&format!("parameters   {params} ")), "{text}");
 }
 
+/// An f32 tensor of zeros.
+fn zeros(shape: &[usize]) -> Tensor {
+    Tensor::zeros(shape, candle_core::DType::F32, &candle_core::Device::Cpu).unwrap()
+}
+
 /// The toolkit fixture's tensors (tests/fixtures/toolkit3_nested, made by
 /// tests/reference/make_fixtures.py from the OpenMMLab 3.x converter's mapping), as a map.
 fn toolkit_state_dict() -> BTreeMap<String, Tensor> {
@@ -386,10 +391,7 @@ fn toolkit_merging_width_not_4c() {
     let mut sd = toolkit_state_dict();
     let key = "backbone.stages.0.downsample.reduction.weight";
     assert_eq!(sd[key].dims(), &[16, 32]); // C = 8: [2C, 4C]
-    sd.insert(
-        key.to_string(),
-        Tensor::zeros((16, 24), candle_core::DType::F32, &candle_core::Device::Cpu).unwrap(),
-    );
+    sd.insert(key.to_string(), zeros(&[16, 24]));
     let path = dir.path().join("narrow_merge.safetensors");
     write(&sd, &path);
     let img = png(dir.path(), "leaf.png", 41, 37);
@@ -420,10 +422,7 @@ fn toolkit_merging_width_not_4c() {
     // A width that is not even a multiple of 4, read at its own shape (as `compare` reads
     // tensors for the drift table): an error naming the tensor, never a panic.
     let mut sd = toolkit_state_dict();
-    sd.insert(
-        key.to_string(),
-        Tensor::zeros((16, 30), candle_core::DType::F32, &candle_core::Device::Cpu).unwrap(),
-    );
+    sd.insert(key.to_string(), zeros(&[16, 30]));
     let path = dir.path().join("odd_merge.safetensors");
     write(&sd, &path);
     let ckpt = Checkpoint::open(&path).unwrap();
@@ -444,12 +443,7 @@ fn absolute_position_embedding_is_refused() {
     // mmdet 3.x SwinTransformer(use_abs_pos_embed=True): `absolute_pos_embed` [1, L, C].
     sd.insert(
         "backbone.absolute_pos_embed".to_string(),
-        Tensor::zeros(
-            (1, 3136, 8),
-            candle_core::DType::F32,
-            &candle_core::Device::Cpu,
-        )
-        .unwrap(),
+        zeros(&[1, 3136, 8]),
     );
     let path = dir.path().join("ape.safetensors");
     write(&sd, &path);
@@ -500,9 +494,6 @@ fn inspect_names_the_toolkit_layout() {
 #[test]
 fn toolkit_embedding_without_stages_is_refused() {
     let dir = tempfile::tempdir().unwrap();
-    let zeros = |shape: &[usize]| {
-        Tensor::zeros(shape, candle_core::DType::F32, &candle_core::Device::Cpu).unwrap()
-    };
     let mut sd = BTreeMap::new();
     sd.insert(
         "backbone.patch_embed.projection.weight".to_string(),
