@@ -996,6 +996,9 @@ pub fn ignored_reason(name: &str) -> &'static str {
         "segmentation head"
     } else if any(&["rpn_head.", "roi_head.", "bbox_head.", "mask_head."]) {
         "detection head"
+    } else if name.starts_with("data_preprocessor.") {
+        "the training toolkit's input normalisation; Mullion normalises with --mean / --std \
+         (default ImageNet)"
     } else if is_stage_norm(name) {
         "per-stage output norm; used only when every stage has one"
     } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
@@ -1036,6 +1039,11 @@ mod tests {
                 "per-stage output norm; used only when every stage has one",
             ),
             ("backbone.norm.weight", "not part of the backbone"),
+            (
+                "data_preprocessor.mean",
+                "the training toolkit's input normalisation; Mullion normalises with --mean / \
+                 --std (default ImageNet)",
+            ),
             (
                 "backbone.stages.0.blocks.0.attn.w_msa.relative_position_index",
                 "buffer, recomputed",
