@@ -383,8 +383,10 @@ fn toolkit_state_dict() -> BTreeMap<String, Tensor> {
         .collect()
 }
 
-/// A patch merging stored in unfold order (OpenMMLab 3.x layout) whose reduction width is not
-/// 4C: the command names the file, the tensor and the width it needs, exit status 1.
+/// A patch merging stored in unfold order (OpenMMLab 3.x layout; mmdetection 3.x
+/// mmdet/models/layers/transformer/utils.py `PatchMerging`: `reduction` is
+/// `Linear(4 * C, 2 * C)` over the 2x2 unfold) whose reduction width is not 4C: the command
+/// names the file, the tensor and the width it needs, exit status 1.
 #[test]
 fn toolkit_merging_width_not_4c() {
     let dir = tempfile::tempdir().unwrap();
@@ -489,8 +491,9 @@ fn inspect_names_the_toolkit_layout() {
 }
 
 /// An OpenMMLab patch embedding without any `stages.*` blocks (e.g. a plain vision transformer
-/// from the same toolkits, whose blocks are `layers.{i}`) is no shifted-window backbone: the
-/// message names the tensor and what is missing beside it.
+/// of the same family of toolkits, mmpretrain 1.x `VisionTransformer`: `patch_embed.projection`,
+/// blocks `layers.{i}.attn.qkv`) is no shifted-window backbone: the message names the tensor
+/// and what is missing beside it.
 #[test]
 fn toolkit_embedding_without_stages_is_refused() {
     let dir = tempfile::tempdir().unwrap();
