@@ -43,8 +43,8 @@ impl LayoutKind {
             LayoutKind::Transformers4 => "transformers 4.x",
             LayoutKind::Transformers5 => "transformers 5.x",
             LayoutKind::OpenMmlab3 => {
-                "OpenMMLab detection / segmentation toolkits 3.x (stages with patch merging at \
-                 the end, stored in unfold order and put back in timm's order at load)"
+                "OpenMMLab detection / segmentation toolkits 3.x (patch merging at the end of \
+                 each stage, stored in unfold order, reordered at load)"
             }
         }
     }
