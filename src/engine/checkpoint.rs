@@ -26,6 +26,11 @@ pub enum LayoutKind {
     Transformers4,
     /// transformers 5.x: `attention.q_proj/k_proj/v_proj/o_proj`, `mlp.fc1/fc2`, ...
     Transformers5,
+    /// The OpenMMLab detection and segmentation toolkits, 3.x: `patch_embed.projection`,
+    /// `stages.{i}.blocks.{j}.attn.w_msa.*`, `ffn.layers.0.0` / `ffn.layers.1`, patch merging
+    /// at the end of stage i (`stages.{i}.downsample`) stored in the channel order of a 2x2
+    /// unfold, per-stage output norms `norm{i}`.
+    OpenMmlab3,
 }
 
 impl LayoutKind {
@@ -37,15 +42,24 @@ impl LayoutKind {
             }
             LayoutKind::Transformers4 => "transformers 4.x",
             LayoutKind::Transformers5 => "transformers 5.x",
+            LayoutKind::OpenMmlab3 => {
+                "OpenMMLab detection / segmentation toolkits 3.x (patch merging at the end of \
+                 each stage, stored in unfold order, reordered at load)"
+            }
         }
     }
 
     /// The padding semantics the library that writes this layout computes with. Backbones
     /// that carry per-stage output norms come from dense-prediction code (the detection
     /// release; transformers' backbone class), which always partitions: small stages are padded
-    /// up to the window and keep their shift.
+    /// up to the window and keep their shift. The OpenMMLab toolkits pad then shift and never
+    /// clamp the window, with or without output norms.
     pub fn default_semantics(self, has_stage_norms: bool) -> Semantics {
         match self {
+            LayoutKind::OpenMmlab3 => Semantics {
+                pad_order: PadOrder::PadThenShift,
+                small_stage: SmallStage::PadUp,
+            },
             LayoutKind::Timm => Semantics {
                 pad_order: PadOrder::ShiftThenPad,
                 small_stage: SmallStage::ClampPerAxis,
@@ -126,12 +140,16 @@ enum Recipe {
     One(String),
     /// Concatenated along dim 0 (transformers' separate q, k, v).
     Cat(Vec<String>),
+    /// One tensor whose last dimension holds a 2x2 patch merging's inputs in the channel order
+    /// of an unfold (the OpenMMLab toolkits); put back in timm's order at load
+    /// ([`from_unfold_order`]).
+    Unfold(String),
 }
 
 impl Recipe {
     fn names(&self) -> Vec<&str> {
         match self {
-            Recipe::One(n) => vec![n.as_str()],
+            Recipe::One(n) | Recipe::Unfold(n) => vec![n.as_str()],
             Recipe::Cat(v) => v.iter().map(String::as_str).collect(),
         }
     }
@@ -201,11 +219,45 @@ fn block_name_tf5(part: &str) -> Recipe {
     }
 }
 
+/// A block tensor's name inside an OpenMMLab 3.x block (`attn.w_msa.*`, `ffn.layers.0.0.*` for
+/// fc1, `ffn.layers.1.*` for fc2), from timm's sub-name.
+fn block_name_openmmlab(part: &str) -> String {
+    if let Some(rest) = part.strip_prefix("attn.") {
+        format!("attn.w_msa.{rest}")
+    } else if let Some(wb) = part.strip_prefix("mlp.fc1.") {
+        format!("ffn.layers.0.0.{wb}")
+    } else if let Some(wb) = part.strip_prefix("mlp.fc2.") {
+        format!("ffn.layers.1.{wb}")
+    } else {
+        part.to_string()
+    }
+}
+
+/// The inverse of the OpenMMLab converters' `correct_unfold_reduction_order` /
+/// `correct_unfold_norm_order`: those view the last dimension (4C wide, timm's order: the 2x2
+/// neighbours (0,0), (1,0), (0,1), (1,1), each C channels) as 4 x C, reorder the neighbours
+/// [0, 2, 1, 3] and transpose to C x 4 (the unfold's channel-major order). Here the last
+/// dimension is viewed as C x 4, transposed to 4 x C, and the neighbours reordered by the same
+/// [0, 2, 1, 3] (a swap, so its own inverse). The caller checks that 4 divides the width.
+pub fn from_unfold_order(t: &Tensor) -> candle_core::Result<Tensor> {
+    let dims = t.dims().to_vec();
+    let width = dims.last().copied().unwrap_or(0);
+    let lead: usize = dims[..dims.len().saturating_sub(1)].iter().product();
+    let order = Tensor::new(&[0u32, 2, 1, 3], t.device())?;
+    t.reshape((lead, width / 4, 4))?
+        .transpose(1, 2)?
+        .contiguous()?
+        .index_select(&order, 1)?
+        .reshape(dims)
+}
+
 impl Layout {
-    /// The file's name for the stages up to their index: `{prefix}layers.` (timm, original) or
-    /// `{prefix}encoder.layers.` (transformers); stage `i`'s blocks are `<this>{i}.blocks.{j}.`.
+    /// The file's name for the stages up to their index: `{prefix}layers.` (timm, original),
+    /// `{prefix}encoder.layers.` (transformers) or `{prefix}stages.` (OpenMMLab 3.x); stage `i`'s
+    /// blocks are `<this>{i}.blocks.{j}.`.
     pub fn stages_prefix(&self) -> String {
         match self.kind {
+            LayoutKind::OpenMmlab3 => format!("{}stages.", self.prefix),
             LayoutKind::Timm | LayoutKind::Original => format!("{}layers.", self.prefix),
             LayoutKind::Transformers4 | LayoutKind::Transformers5 => {
                 format!("{}encoder.layers.", self.prefix)
@@ -263,6 +315,19 @@ impl Layout {
                 Part::StageNorm(i, s) => one(format!("{p}norm{i}.{s}")),
                 Part::FinalNorm(s) => one(format!("{p}norm.{s}")),
             },
+            LayoutKind::OpenMmlab3 => match part {
+                Part::Embed(s) => {
+                    let s = s.replacen("proj.", "projection.", 1);
+                    one(format!("{p}patch_embed.{s}"))
+                }
+                Part::Merge(i, s) => Recipe::Unfold(format!("{p}stages.{}.downsample.{s}", i - 1)),
+                Part::Block(i, j, s) => one(format!(
+                    "{p}stages.{i}.blocks.{j}.{}",
+                    block_name_openmmlab(s)
+                )),
+                Part::StageNorm(i, s) => one(format!("{p}norm{i}.{s}")),
+                Part::FinalNorm(s) => one(format!("{p}norm.{s}")),
+            },
             LayoutKind::Transformers4 | LayoutKind::Transformers5 => match part {
                 Part::Embed(s) => {
                     let s = s.replacen("proj.", "patch_embeddings.projection.", 1);
@@ -279,6 +344,7 @@ impl Layout {
                     match inner {
                         Recipe::One(n) => Recipe::One(at(&n)),
                         Recipe::Cat(v) => Recipe::Cat(v.iter().map(at).collect()),
+                        Recipe::Unfold(n) => Recipe::Unfold(at(&n)),
                     }
                 }
                 Part::StageNorm(i, s) => one(format!("{p}hidden_states_norms.stage{}.{s}", i + 1)),
@@ -351,10 +417,25 @@ fn sniff(path: &Path) -> Result<&'static str> {
     ))
 }
 
+/// Which family of layouts a patch-embedding marker belongs to.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Family {
+    /// timm and the original release (`patch_embed.proj`).
+    TimmLike,
+    /// transformers 4.x and 5.x.
+    Transformers,
+    /// The OpenMMLab toolkits, 3.x (`patch_embed.projection`, with `stages.*`).
+    OpenMmlab,
+}
+
 /// Markers that identify a layout: the patch embedding's projection weight.
-const EMBED_MARKERS: [(&str, bool); 2] = [
-    ("patch_embed.proj.weight", false),
-    ("embeddings.patch_embeddings.projection.weight", true),
+const EMBED_MARKERS: [(&str, Family); 3] = [
+    ("patch_embed.proj.weight", Family::TimmLike),
+    (
+        "embeddings.patch_embeddings.projection.weight",
+        Family::Transformers,
+    ),
+    ("patch_embed.projection.weight", Family::OpenMmlab),
 ];
 
 /// Find the layout and prefix from the tensor names.
@@ -362,24 +443,44 @@ fn detect_layout(
     path: &Path,
     shapes: &BTreeMap<String, (Vec<usize>, DType)>,
 ) -> Result<(Layout, Vec<String>)> {
-    let mut found: Vec<(String, bool)> = Vec::new();
+    let mut found: Vec<(String, Family)> = Vec::new();
+    // OpenMMLab markers without any `stages.*` block beside them (another model's embedding).
+    let mut stageless: Vec<String> = Vec::new();
     for name in shapes.keys() {
-        for (marker, hf) in EMBED_MARKERS {
+        for (marker, family) in EMBED_MARKERS {
             if let Some(prefix) = name.strip_suffix(marker) {
-                if prefix.is_empty() || prefix.ends_with('.') {
-                    found.push((prefix.to_string(), hf));
+                if !(prefix.is_empty() || prefix.ends_with('.')) {
+                    continue;
                 }
+                let blocks = format!("{prefix}stages.");
+                if family == Family::OpenMmlab
+                    && !shapes
+                        .keys()
+                        .any(|k| k.starts_with(&blocks) && k.contains(".blocks."))
+                {
+                    stageless.push(name.clone());
+                    continue;
+                }
+                found.push((prefix.to_string(), family));
             }
         }
     }
     if found.is_empty() {
         let sample: Vec<_> = shapes.keys().take(5).cloned().collect();
+        let stageless = match stageless.first() {
+            Some(n) => format!(
+                "; {n} looks like an OpenMMLab patch embedding, but no `stages.*.blocks.*` \
+                 tensors sit beside it"
+            ),
+            None => String::new(),
+        };
         return Err(Error::bad_file(
             path,
             format!(
                 "no shifted-window backbone found: no patch embedding tensor \
-                 (`patch_embed.proj.weight` or `embeddings.patch_embeddings.projection.weight`) \
-                 among its {} tensors (first: {})",
+                 (`patch_embed.proj.weight`, `embeddings.patch_embeddings.projection.weight` or \
+                 `patch_embed.projection.weight` with `stages.*`) among its {} tensors (first: \
+                 {}){stageless}",
                 shapes.len(),
                 sample.join(", ")
             ),
@@ -387,20 +488,34 @@ fn detect_layout(
     }
     // Several backbones (e.g. a teacher and a student): take the shortest prefix.
     found.sort_by_key(|(p, _)| (p.len(), p.clone()));
-    let (prefix, hf) = found[0].clone();
+    let (prefix, family) = found[0].clone();
     let others = found[1..].iter().map(|(p, _)| p.clone()).collect();
     let has = |n: &str| shapes.contains_key(&format!("{prefix}{n}"));
-    let kind = if hf {
-        if has("encoder.layers.0.blocks.0.attention.self.query.weight") {
+    let kind = match family {
+        Family::Transformers if has("encoder.layers.0.blocks.0.attention.self.query.weight") => {
             LayoutKind::Transformers4
-        } else {
-            LayoutKind::Transformers5
         }
-    } else if has("layers.0.downsample.reduction.weight") {
-        LayoutKind::Original
-    } else {
-        LayoutKind::Timm
+        Family::Transformers => LayoutKind::Transformers5,
+        Family::OpenMmlab => LayoutKind::OpenMmlab3,
+        Family::TimmLike if has("layers.0.downsample.reduction.weight") => LayoutKind::Original,
+        Family::TimmLike => LayoutKind::Timm,
     };
+    // An absolute position embedding is added to the patch tokens; running without it would
+    // compute another function, so such a file is refused rather than half used.
+    if let Some(name) = ["absolute_pos_embed", "embeddings.position_embeddings"]
+        .iter()
+        .map(|n| format!("{prefix}{n}"))
+        .find(|n| shapes.contains_key(n))
+    {
+        return Err(Error::bad_file(
+            path,
+            format!(
+                "tensor {name} is an absolute position embedding added to the patch tokens \
+                 (trained with absolute position embeddings switched on); Mullion runs \
+                 backbones without one, and ignoring it would compute something else"
+            ),
+        ));
+    }
     Ok((Layout { kind, prefix }, others))
 }
 
@@ -498,7 +613,7 @@ impl Checkpoint {
     /// Shape of a canonical part, if every tensor it is made of is present.
     pub fn shape(&self, part: &Part) -> Option<Vec<usize>> {
         match self.resolve(part) {
-            Recipe::One(n) => self.shapes.get(&n).map(|s| s.0.clone()),
+            Recipe::One(n) | Recipe::Unfold(n) => self.shapes.get(&n).map(|s| s.0.clone()),
             Recipe::Cat(names) => {
                 let mut out: Option<Vec<usize>> = None;
                 for n in names {
@@ -680,11 +795,25 @@ impl Checkpoint {
                 format!("missing tensor {}", recipe.names().join(" + ")),
             )
         })?;
-        if shape != expected {
+        let unfold = matches!(recipe, Recipe::Unfold(_));
+        let width = shape.last().copied().unwrap_or(0);
+        if shape != expected || (unfold && width % 4 != 0) {
+            let hint = match expected.last() {
+                Some(&w) if unfold && w % 4 == 0 && w != width => format!(
+                    " (a patch merging stored in unfold order holds, in its last dimension, the \
+                     2x2 neighbours of each of the stage's {c} channels: 4 x {c} = {w})",
+                    c = w / 4
+                ),
+                _ if unfold => " (a patch merging stored in unfold order holds, in its last \
+                     dimension, the 2x2 neighbours of each of the stage's C channels: 4C, a \
+                     multiple of 4)"
+                    .to_string(),
+                _ => String::new(),
+            };
             return Err(Error::bad_file(
                 &self.path,
                 format!(
-                    "tensor {} has shape {:?}; the backbone needs {:?} there",
+                    "tensor {} has shape {:?}; the backbone needs {:?} there{hint}",
                     recipe.names().join(" + "),
                     shape,
                     expected
@@ -693,6 +822,7 @@ impl Checkpoint {
         }
         let t = match recipe {
             Recipe::One(n) => self.load_raw(&n)?,
+            Recipe::Unfold(n) => from_unfold_order(&self.load_raw(&n)?)?,
             Recipe::Cat(names) => {
                 let parts = names
                     .iter()
@@ -843,10 +973,34 @@ pub fn square_window(rows: usize) -> Option<usize> {
     (r.checked_mul(r) == Some(rows) && r % 2 == 1).then_some(r.div_ceil(2))
 }
 
+/// `norm{i}.weight` / `.bias` outside any block: a per-stage output norm (detection and
+/// segmentation backbones keep one for each stage they output, e.g. only stages 1 to 3).
+fn is_stage_norm(name: &str) -> bool {
+    let mut rev = name.rsplit('.');
+    let (Some(wb), Some(module)) = (rev.next(), rev.next()) else {
+        return false;
+    };
+    matches!(wb, "weight" | "bias")
+        && !name.contains(".blocks.")
+        && module
+            .strip_prefix("norm")
+            .is_some_and(|i| !i.is_empty() && i.bytes().all(|b| b.is_ascii_digit()))
+}
+
 /// Why a tensor in the file was not used.
 pub fn ignored_reason(name: &str) -> &'static str {
+    let any = |parts: &[&str]| parts.iter().any(|p| name.contains(p));
     if name.ends_with("relative_position_index") || name.ends_with("attn_mask") {
         "buffer, recomputed"
+    } else if any(&["decode_head.", "auxiliary_head."]) {
+        "segmentation head"
+    } else if any(&["rpn_head.", "roi_head.", "bbox_head.", "mask_head."]) {
+        "detection head"
+    } else if name.starts_with("data_preprocessor.") {
+        "the training toolkit's input normalisation; Mullion normalises with --mean / --std \
+         (default ImageNet)"
+    } else if is_stage_norm(name) {
+        "per-stage output norm; used only when every stage has one"
     } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
         "head / classifier"
     } else if name.contains("neck") || name.contains("fpn") || name.contains("decode") {
@@ -867,6 +1021,36 @@ mod tests {
         assert_eq!(square_window(1), Some(1));
         assert_eq!(square_window(168), None);
         assert_eq!(square_window(144), None); // 12^2: even side is no (2M-1)^2
+    }
+
+    #[test]
+    fn ignored_tensors_of_detectors_and_segmenters_have_reasons() {
+        // Module names of mmdetection / mmsegmentation 3.x models around the backbone.
+        for (name, why) in [
+            ("rpn_head.rpn_conv.weight", "detection head"),
+            ("roi_head.bbox_head.fc_cls.weight", "detection head"),
+            ("decode_head.conv_seg.weight", "segmentation head"),
+            ("auxiliary_head.conv_seg.bias", "segmentation head"),
+            ("neck.lateral_convs.0.conv.weight", "neck / decoder"),
+            ("head.fc.weight", "head / classifier"),
+            // mmdet 3.x RetinaNet configs output stages 1 to 3 only (out_indices=(1, 2, 3)).
+            (
+                "backbone.norm1.weight",
+                "per-stage output norm; used only when every stage has one",
+            ),
+            ("backbone.norm.weight", "not part of the backbone"),
+            (
+                "data_preprocessor.mean",
+                "the training toolkit's input normalisation; Mullion normalises with --mean / \
+                 --std (default ImageNet)",
+            ),
+            (
+                "backbone.stages.0.blocks.0.attn.w_msa.relative_position_index",
+                "buffer, recomputed",
+            ),
+        ] {
+            assert_eq!(ignored_reason(name), why, "{name}");
+        }
     }
 
     #[test]
@@ -899,5 +1083,86 @@ mod tests {
             det.recipe(&Part::StageNorm(3, "bias".into())),
             Recipe::One("backbone.norm3.bias".into())
         );
+        // OpenMMLab 3.x, as mmdet/models/backbones/swin.py (mmdetection 3.x) names its modules.
+        let mm = Layout {
+            kind: LayoutKind::OpenMmlab3,
+            prefix: "backbone.".into(),
+        };
+        let cases = [
+            (Part::embed("proj.weight"), "patch_embed.projection.weight"),
+            (Part::embed("norm.bias"), "patch_embed.norm.bias"),
+            (
+                Part::block(2, 1, "attn.qkv.weight"),
+                "stages.2.blocks.1.attn.w_msa.qkv.weight",
+            ),
+            (
+                Part::block(0, 0, "attn.relative_position_bias_table"),
+                "stages.0.blocks.0.attn.w_msa.relative_position_bias_table",
+            ),
+            (
+                Part::block(1, 0, "attn.proj.bias"),
+                "stages.1.blocks.0.attn.w_msa.proj.bias",
+            ),
+            (
+                Part::block(1, 1, "mlp.fc1.weight"),
+                "stages.1.blocks.1.ffn.layers.0.0.weight",
+            ),
+            (
+                Part::block(3, 0, "mlp.fc2.bias"),
+                "stages.3.blocks.0.ffn.layers.1.bias",
+            ),
+            (
+                Part::block(0, 1, "norm2.weight"),
+                "stages.0.blocks.1.norm2.weight",
+            ),
+            (Part::StageNorm(2, "weight".into()), "norm2.weight"),
+        ];
+        for (part, name) in cases {
+            assert_eq!(mm.recipe(&part), Recipe::One(format!("backbone.{name}")));
+        }
+        for s in ["reduction.weight", "norm.weight", "norm.bias"] {
+            assert_eq!(
+                mm.recipe(&Part::merge(3, s)),
+                Recipe::Unfold(format!("backbone.stages.2.downsample.{s}"))
+            );
+        }
+    }
+
+    /// `correct_unfold_reduction_order` / `correct_unfold_norm_order` of the OpenMMLab
+    /// converters (mmdetection 3.x, tools/model_converters/swin2mmdet.py via
+    /// mmdet/models/backbones/swin.py `swin_converter`), written out element by element:
+    /// `x.reshape(o, 4, C)[:, [0, 2, 1, 3], :].transpose(1, 2).reshape(o, 4C)`.
+    fn converter_forward(x: &[f32], rows: usize, width: usize) -> Vec<f32> {
+        let c = width / 4;
+        let order = [0, 2, 1, 3];
+        let mut out = vec![0f32; rows * width];
+        for r in 0..rows {
+            for ch in 0..c {
+                for (k, &src) in order.iter().enumerate() {
+                    // After the transpose, element (ch, k) sits at ch * 4 + k.
+                    out[r * width + ch * 4 + k] = x[r * width + src * c + ch];
+                }
+            }
+        }
+        out
+    }
+
+    #[test]
+    fn unfold_order_is_undone_exactly() {
+        let dev = Device::Cpu;
+        // A reduction weight [2C, 4C] and a norm vector [4C], C = 3, distinct values.
+        for (rows, width) in [(6usize, 12usize), (1, 12)] {
+            let timm: Vec<f32> = (0..rows * width).map(|v| v as f32 * 0.5 - 7.0).collect();
+            let stored = converter_forward(&timm, rows, width);
+            assert_ne!(stored, timm);
+            let t = if rows == 1 {
+                Tensor::from_vec(stored, width, &dev).unwrap()
+            } else {
+                Tensor::from_vec(stored, (rows, width), &dev).unwrap()
+            };
+            let back = from_unfold_order(&t).unwrap();
+            assert_eq!(back.dims(), t.dims());
+            assert_eq!(back.flatten_all().unwrap().to_vec1::<f32>().unwrap(), timm);
+        }
     }
 }

@@ -6,6 +6,12 @@ One run per library environment (see README.md for the pinned environments):
     python tests/reference/make_fixtures.py --lib timm
     python tests/reference/make_fixtures.py --lib tf4
     python tests/reference/make_fixtures.py --lib tf5
+    python tests/reference/make_fixtures.py --lib toolkit   # timm 1.0.x + transformers 5.x
+
+`--lib toolkit` re-lays a timm model's weights exactly as the OpenMMLab
+detection toolkit's published converter does (3.x layout) and takes the
+expected values from a transformers SwinBackbone, which computes with the
+toolkit's padding semantics.
 
 Each case directory under tests/fixtures/ gets input.png, the weights, an
 expected.safetensors with NHWC float32 activations and a case.json. Nothing
@@ -80,6 +86,10 @@ CASES = {
     "tf5_odd": dict(
         lib="tf5", size=(203, 234), embed_dim=16, depths=[2, 2, 2, 2], heads=[2, 2, 4, 4],
         window=7, patch=4, mlp_ratio=2.0, seed=301, wrapper="model"),
+    # ---- OpenMMLab 3.x layout (timm weights, transformers 5.x SwinBackbone forward) ----
+    "toolkit3_nested": dict(
+        lib="toolkit", size=(101, 71), embed_dim=8, depths=[2, 2, 2], heads=[1, 2, 4],
+        window=7, patch=4, mlp_ratio=2.0, seed=401),
 }
 
 
@@ -89,6 +99,11 @@ CASES = {
 
 def versions(lib):
     tv = torch.__version__.split("+")[0]
+    if lib == "toolkit":
+        import timm
+        import transformers
+        return f"transformers {transformers.__version__} SwinBackbone (weights from timm " \
+               f"{timm.__version__}), torch {tv}"
     if lib == "timm":
         import timm
         return f"timm {timm.__version__}, torch {tv}"
@@ -592,21 +607,255 @@ def run_tf_case(name, cfg, sanity):
         report_sanity(name, out, lambda m: tf_run(m, x, wrapper), model)
 
 
+
+# --------------------------------------------------------------------------
+# OpenMMLab 3.x layout (detection / segmentation toolkits)
+# --------------------------------------------------------------------------
+
+def timm_to_original(sd):
+    """timm >= 0.9 keys -> the original release's keys (the converter's input): patch
+    merging moves from the start of stage i+1 to the end of stage i. The exact inverse of
+    the renaming in timm 1.0.31 timm/models/swin_transformer.py checkpoint_filter_fn
+    (`layers.(i).downsample -> layers.(i+1).downsample`, `head. -> head.fc.`)."""
+    out = {}
+    for k, v in sd.items():
+        k = re.sub(r"layers\.(\d+)\.downsample", lambda m: f"layers.{int(m.group(1)) - 1}.downsample", k)
+        k = k.replace("head.fc.", "head.")
+        out[k] = v
+    return out
+
+
+def correct_unfold_reduction_order(x):
+    # mmdetection 3.x mmdet/models/backbones/swin.py swin_converter (used by
+    # tools/model_converters/swin2mmdet.py); mmsegmentation's swin2mmseg.py has the same.
+    out_channel, in_channel = x.shape
+    x = x.reshape(out_channel, 4, in_channel // 4)
+    x = x[:, [0, 2, 1, 3], :].transpose(1, 2).reshape(out_channel, in_channel)
+    return x
+
+
+def correct_unfold_norm_order(x):
+    # Same source as correct_unfold_reduction_order.
+    in_channel = x.shape[0]
+    x = x.reshape(4, in_channel // 4)
+    x = x[[0, 2, 1, 3], :].transpose(0, 1).reshape(in_channel)
+    return x
+
+
+def swin_converter(ckpt):
+    """mmdetection 3.x mmdet/models/backbones/swin.py `swin_converter`, the mapping
+    tools/model_converters/swin2mmdet.py applies, rewritten line for line."""
+    new_ckpt = {}
+    for k, v in ckpt.items():
+        if k.startswith("head"):
+            continue
+        elif k.startswith("layers"):
+            new_v = v
+            if "attn." in k:
+                new_k = k.replace("attn.", "attn.w_msa.")
+            elif "mlp." in k:
+                if "mlp.fc1." in k:
+                    new_k = k.replace("mlp.fc1.", "ffn.layers.0.0.")
+                elif "mlp.fc2." in k:
+                    new_k = k.replace("mlp.fc2.", "ffn.layers.1.")
+                else:
+                    new_k = k.replace("mlp.", "ffn.")
+            elif "downsample" in k:
+                new_k = k
+                if "reduction." in k:
+                    new_v = correct_unfold_reduction_order(v)
+                elif "norm." in k:
+                    new_v = correct_unfold_norm_order(v)
+            else:
+                new_k = k
+            new_k = new_k.replace("layers", "stages", 1)
+        elif k.startswith("patch_embed"):
+            new_v = v
+            if "proj" in k:
+                new_k = k.replace("proj", "projection")
+            else:
+                new_k = k
+        else:
+            new_v = v
+            new_k = k
+        new_ckpt["backbone." + new_k] = new_v
+    return new_ckpt
+
+
+def mm_relative_position_index(wh, ww):
+    """The `relative_position_index` buffer of mmdet 3.x WindowMSA (persistent, so it is in
+    the toolkit's state_dict): double_step_seq, sum with its transpose, flip(1)."""
+    def double_step_seq(step1, len1, step2, len2):
+        seq1 = torch.arange(0, step1 * len1, step1)
+        seq2 = torch.arange(0, step2 * len2, step2)
+        return (seq1[:, None] + seq2[None, :]).reshape(1, -1)
+    c = double_step_seq(2 * ww - 1, wh, 1, ww)
+    return (c + c.T).flip(1).contiguous()
+
+
+def timm_to_tf5_backbone(sd, norms, n_stages):
+    """timm >= 0.9 keys (+ per-stage norms) -> transformers 5.x SwinBackbone keys."""
+    out = {}
+    for k, v in sd.items():
+        if k.startswith("head."):
+            continue
+        if k.startswith("patch_embed."):
+            out["swin.embeddings." + k[len("patch_embed."):]
+                .replace("proj.", "patch_embeddings.projection.")] = v
+            continue
+        if k.startswith("norm."):
+            out["swin.layernorm." + k[len("norm."):]] = v
+            continue
+        m = re.match(r"layers\.(\d+)\.downsample\.(.*)", k)
+        if m:
+            out[f"swin.encoder.layers.{int(m.group(1)) - 1}.downsample.{m.group(2)}"] = v
+            continue
+        m = re.match(r"layers\.(\d+)\.blocks\.(\d+)\.(.*)", k)
+        assert m, k
+        pre = f"swin.encoder.layers.{m.group(1)}.blocks.{m.group(2)}."
+        rest = m.group(3)
+        if rest.startswith("attn.qkv."):
+            wb = rest[len("attn.qkv."):]
+            for q, part in zip(("q_proj", "k_proj", "v_proj"), v.chunk(3, 0)):
+                out[pre + f"attention.{q}.{wb}"] = part
+            continue
+        rest = {"attn.relative_position_bias_table":
+                "attention.relative_position_bias.relative_position_bias_table"}.get(rest, rest)
+        rest = rest.replace("norm1.", "layernorm_before.").replace("norm2.", "layernorm_after.")
+        rest = rest.replace("attn.proj.", "attention.o_proj.")
+        out[pre + rest] = v
+    for i in range(n_stages):
+        for t in ("weight", "bias"):
+            out[f"hidden_states_norms.stage{i + 1}.{t}"] = norms[f"norm{i}.{t}"]
+    return out
+
+
+def run_toolkit_case(name, cfg, sanity):
+    from transformers import SwinBackbone
+
+    W, H = cfg["size"]
+    p = cfg["patch"]
+    n = len(cfg["depths"])
+    u8 = make_image(W, H, cfg["seed"])
+    x = normalise(u8)
+    xp = pad_to_patch(x, p)
+    torch.manual_seed(cfg["seed"])
+    # The reference model: timm 1.0.x with every parameter randomised. always_partition=True
+    # keeps the full window (and its (2M-1)^2-row bias table) at every stage, as the toolkit's
+    # backbone has; timm would otherwise clamp the small last stage's window at construction.
+    tm = timm_build(dict(cfg, always_partition=True), tuple(xp.shape[-2:]))
+    randomise(tm, cfg["seed"])
+    tsd = {k: v.detach().clone() for k, v in tm.state_dict().items()}
+    # Per-stage output norms (the toolkit's norm0..norm{n-1}; timm has none), same rule.
+    g = torch.Generator().manual_seed(cfg["seed"] + 1)
+    norms = {}
+    for i in range(n):
+        c = cfg["embed_dim"] * 2 ** i
+        norms[f"norm{i}.weight"] = 1.0 + 0.1 * torch.randn(c, generator=g)
+        norms[f"norm{i}.bias"] = 0.1 * torch.randn(c, generator=g)
+
+    # Reference features with the toolkit's semantics (pad, then shift; a stage smaller than
+    # the window is padded up, window and shift kept): transformers' SwinBackbone.
+    model = SwinBackbone(tf_config(cfg, W, H)).eval()
+    res = model.load_state_dict(timm_to_tf5_backbone(tsd, norms, n), strict=False)
+    assert not res.unexpected_keys, res.unexpected_keys
+    assert all("relative_position_index" in k for k in res.missing_keys), res.missing_keys
+    out = tf_run(model, x, "backbone")
+    # The backbone's forward also runs swin.layernorm; the toolkit's backbone has no final norm.
+    out.pop("final_norm", None)
+    geo = tf_geometry(model, out)
+    # The timm model and the backbone share the patch embedding exactly.
+    with torch.no_grad():
+        emb_timm = tm.patch_embed(xp)
+    assert rel_diff(out["embed"], emb_timm.float()) < 1e-6
+
+    # Re-lay the weights as the toolkit's converter does, then as the toolkit saves a
+    # fine-tuned detector: backbone.* (its own buffers, norm0..; no final norm, which the
+    # toolkit's backbone does not have), neck and head tensors, nested under `state_dict`.
+    sd = swin_converter(timm_to_original(tsd))
+    del sd["backbone.norm.weight"], sd["backbone.norm.bias"]
+    for k, v in norms.items():
+        sd["backbone." + k] = v
+    # Every block of the toolkit's model carries this int64 buffer (19 KB at window 7); one
+    # block's copy is kept so the pickle holds one, the rest are left out to keep the file small.
+    sd["backbone.stages.0.blocks.0.attn.w_msa.relative_position_index"] = \
+        mm_relative_position_index(cfg["window"], cfg["window"])
+    gh = torch.Generator().manual_seed(cfg["seed"] + 2)
+    for i in range(n):
+        c = cfg["embed_dim"] * 2 ** i
+        sd[f"neck.lateral_convs.{i}.conv.weight"] = torch.randn(16, c, 1, 1, generator=gh) / math.sqrt(c)
+        sd[f"neck.lateral_convs.{i}.conv.bias"] = 0.1 * torch.randn(16, generator=gh)
+    sd["rpn_head.rpn_conv.weight"] = torch.randn(16, 16, 3, 3, generator=gh) / 12.0
+    sd["rpn_head.rpn_conv.bias"] = 0.1 * torch.randn(16, generator=gh)
+    sd["roi_head.bbox_head.fc_cls.weight"] = torch.randn(3, 32, generator=gh) / math.sqrt(32)
+    sd = {k: v.contiguous().clone() for k, v in sd.items()}
+    meta = {
+        "note": "made by tests/reference/make_fixtures.py (toolkit3_nested), not by training",
+        "epoch": 12,
+        "iter": 3000,
+        "seed": cfg["seed"],
+        "dataset_meta": {"classes": ("seedling", "gap"), "palette": [(220, 20, 60), (0, 82, 0)]},
+    }
+    weights = {"meta": meta, "state_dict": sd}
+
+    # A small worked example of the converter's permutation (C = 2): the Rust tests undo it.
+    ex = torch.arange(16, dtype=torch.float32).reshape(2, 8)
+    unfold_example = {
+        "timm_order": ex.tolist(),
+        "converted": correct_unfold_reduction_order(ex).tolist(),
+        "norm_timm_order": ex[0].tolist(),
+        "norm_converted": correct_unfold_norm_order(ex[0]).tolist(),
+    }
+    notes = [
+        "Weights: a timm SwinTransformer with every parameter randomised (plus per-stage output "
+        "norms norm{i}, randomised with the LayerNorm rule). Re-laid exactly as the OpenMMLab "
+        "detection toolkit's converter does (mmdetection 3.x mmdet/models/backbones/swin.py "
+        "swin_converter, used by tools/model_converters/swin2mmdet.py): after moving patch "
+        "merging to the end of each stage (the original release's layout, the inverse of timm's "
+        "checkpoint_filter_fn), `layers` -> `stages`, `attn.` -> `attn.w_msa.`, `mlp.fc1.` -> "
+        "`ffn.layers.0.0.`, `mlp.fc2.` -> `ffn.layers.1.`, `patch_embed.proj` -> "
+        "`patch_embed.projection`, the merging reduction weight and norm permuted into unfold "
+        "order (sub-blocks [0, 2, 1, 3], interleaved), all under `backbone.`.",
+        "weights.pth is torch.save of {'meta': ..., 'state_dict': ...} as the toolkit writes a "
+        "fine-tuned model: the backbone without a final norm, one relative_position_index buffer "
+        "(int64, mmdet's formula; the toolkit's files carry one per block, left out here to keep "
+        "the file small), and neck.* / rpn_head.* / roi_head.* tensors to ignore.",
+        "Expected values: transformers SwinBackbone loaded with the same weights (qkv split into "
+        "q, k, v; hidden_states_norms.stage{i+1} = norm{i}); stage{i}_norm = norm{i}(stage{i}). "
+        "Its pad-then-shift order and always_partition (a stage smaller than the window padded up, "
+        "shift kept) are what mmdet's ShiftWindowMSA computes (pad to a window multiple, roll, mask "
+        "on the padded grid; window and shift never clamped). The timm model's own patch "
+        "embedding was checked equal to the backbone's.",
+    ]
+    extra = {
+        "prefix": "backbone.",
+        "reference": versions("toolkit"),
+        "weights_container": {"format": "torch.save zip pickle", "key": "state_dict", "dtype": "float32"},
+        "unfold_example": unfold_example,
+    }
+    write_case(name, cfg, u8, weights, "weights.pth", out, geo, layout="openmmlab3",
+               pad_order="pad-then-shift", small_stage="pad-up", notes=" ".join(notes), extra=extra)
+    if sanity:
+        report_sanity(name, out, lambda m: tf_run(m, x, "backbone"), model)
+
 # --------------------------------------------------------------------------
 
 def main():
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
-    ap.add_argument("--lib", choices=["timm", "tf4", "tf5"], required=True)
+    ap.add_argument("--lib", choices=["timm", "tf4", "tf5", "toolkit"], required=True)
     ap.add_argument("--case", action="append", help="only these cases (repeatable)")
     ap.add_argument("--sanity", action="store_true", help="also print perturbation sensitivity")
     a = ap.parse_args()
 
     torch.set_num_threads(2)
     torch.use_deterministic_algorithms(True)
-    if a.lib == "timm":
+    if a.lib in ("timm", "toolkit"):
         import timm
         assert timm.__version__.startswith("1.0."), timm.__version__
-    else:
+    if a.lib == "toolkit":
+        import transformers
+        assert transformers.__version__.startswith("5."), transformers.__version__
+    elif a.lib != "timm":
         import transformers
         want = "4." if a.lib == "tf4" else "5."
         assert transformers.__version__.startswith(want), transformers.__version__
@@ -621,6 +870,8 @@ def main():
         cfg = CASES[name]
         if a.lib == "timm":
             run_timm_case(name, cfg, a.sanity)
+        elif a.lib == "toolkit":
+            run_toolkit_case(name, cfg, a.sanity)
         else:
             run_tf_case(name, cfg, a.sanity)
     write_index()

@@ -367,3 +367,152 @@ fn inspect_reports_the_load() {
     let params = small_config().parameter_count(true, None);
     assert!(text.contains(&format!("parameters   {params} ")), "{text}");
 }
+
+/// An f32 tensor of zeros.
+fn zeros(shape: &[usize]) -> Tensor {
+    Tensor::zeros(shape, candle_core::DType::F32, &candle_core::Device::Cpu).unwrap()
+}
+
+/// The toolkit fixture's tensors (tests/fixtures/toolkit3_nested, made by
+/// tests/reference/make_fixtures.py from the OpenMMLab 3.x converter's mapping), as a map.
+fn toolkit_state_dict() -> BTreeMap<String, Tensor> {
+    let path = crate::common::fixtures().join("toolkit3_nested/weights.pth");
+    candle_core::pickle::read_all_with_key(&path, Some("state_dict"))
+        .unwrap()
+        .into_iter()
+        .collect()
+}
+
+/// A patch merging stored in unfold order (OpenMMLab 3.x layout; mmdetection 3.x
+/// mmdet/models/layers/transformer/utils.py `PatchMerging`: `reduction` is
+/// `Linear(4 * C, 2 * C)` over the 2x2 unfold) whose reduction width is not 4C: the command
+/// names the file, the tensor and the width it needs, exit status 1.
+#[test]
+fn toolkit_merging_width_not_4c() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut sd = toolkit_state_dict();
+    let key = "backbone.stages.0.downsample.reduction.weight";
+    assert_eq!(sd[key].dims(), &[16, 32]); // C = 8: [2C, 4C]
+    sd.insert(key.to_string(), zeros(&[16, 24]));
+    let path = dir.path().join("narrow_merge.safetensors");
+    write(&sd, &path);
+    let img = png(dir.path(), "leaf.png", 41, 37);
+    let out = dir.path().join("f.safetensors");
+    for args in [
+        vec!["inspect", path.to_str().unwrap()],
+        vec![
+            "features",
+            "--weights",
+            path.to_str().unwrap(),
+            "--image",
+            img.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
+    ] {
+        let (code, err) = mullion(&args);
+        assert_eq!(code, 1, "{args:?}: {err}");
+        for needle in ["narrow_merge.safetensors", key, "[16, 24]", "4 x 8 = 32"] {
+            assert!(
+                err.contains(needle),
+                "{args:?}: missing '{needle}' in {err}"
+            );
+        }
+    }
+    assert!(!out.exists());
+
+    // A width that is not even a multiple of 4, read at its own shape (as `compare` reads
+    // tensors for the drift table): an error naming the tensor, never a panic.
+    let mut sd = toolkit_state_dict();
+    sd.insert(key.to_string(), zeros(&[16, 30]));
+    let path = dir.path().join("odd_merge.safetensors");
+    write(&sd, &path);
+    let ckpt = Checkpoint::open(&path).unwrap();
+    let part = mullion::engine::Part::merge(1, "reduction.weight");
+    let msg = ckpt.load(&part, &[16, 30]).unwrap_err().to_string();
+    assert!(
+        msg.contains("odd_merge.safetensors") && msg.contains(key) && msg.contains("multiple of 4"),
+        "{msg}"
+    );
+}
+
+/// An absolute position embedding changes what the backbone computes; Mullion does not add one,
+/// so the file is refused by name instead of being run without it.
+#[test]
+fn absolute_position_embedding_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut sd = toolkit_state_dict();
+    // mmdet 3.x SwinTransformer(use_abs_pos_embed=True): `absolute_pos_embed` [1, L, C].
+    sd.insert(
+        "backbone.absolute_pos_embed".to_string(),
+        zeros(&[1, 3136, 8]),
+    );
+    let path = dir.path().join("ape.safetensors");
+    write(&sd, &path);
+    let (code, err) = mullion(&["inspect", path.to_str().unwrap()]);
+    assert_eq!(code, 1, "{err}");
+    assert!(
+        err.contains("ape.safetensors")
+            && err.contains("backbone.absolute_pos_embed")
+            && err.contains("absolute position embedding"),
+        "{err}"
+    );
+}
+
+/// `mullion inspect` on the toolkit fixture (OpenMMLab 3.x layout, tests/fixtures/toolkit3_nested)
+/// names the layout, the nesting, the padding defaults of mmdet 3.x's ShiftWindowMSA (pad, then
+/// shift; the window never clamped) and why each neck and head tensor is left out.
+#[test]
+fn inspect_names_the_toolkit_layout() {
+    let path = crate::common::fixtures().join("toolkit3_nested/weights.pth");
+    let run = crate::common::mullion(&["inspect", path.to_str().unwrap()]);
+    assert!(run.ok(), "{}", run.stderr);
+    for needle in [
+        "nested under 'state_dict'",
+        "OpenMMLab detection / segmentation toolkits 3.x",
+        "prefix 'backbone.'",
+        "depths [2, 2, 2]",
+        "heads [1, 2, 4]",
+        "per-stage output norms: present",
+        "pad-then-shift",
+        "'pad-up'",
+        "1 buffers",
+        "neck.lateral_convs.0.conv.weight (neck / decoder)",
+        "rpn_head.rpn_conv.weight (detection head)",
+        "roi_head.bbox_head.fc_cls.weight (detection head)",
+        "0 missing",
+    ] {
+        assert!(
+            run.stdout.contains(needle),
+            "missing '{needle}' in:\n{}",
+            run.stdout
+        );
+    }
+}
+
+/// An OpenMMLab patch embedding without any `stages.*` blocks (e.g. a plain vision transformer
+/// of the same family of toolkits, mmpretrain 1.x `VisionTransformer`: `patch_embed.projection`,
+/// blocks `layers.{i}.attn.qkv`) is no shifted-window backbone: the message names the tensor
+/// and what is missing beside it.
+#[test]
+fn toolkit_embedding_without_stages_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut sd = BTreeMap::new();
+    sd.insert(
+        "backbone.patch_embed.projection.weight".to_string(),
+        zeros(&[8, 3, 16, 16]),
+    );
+    sd.insert(
+        "backbone.layers.0.attn.qkv.weight".to_string(),
+        zeros(&[24, 8]),
+    );
+    let path = dir.path().join("vit.safetensors");
+    write(&sd, &path);
+    let msg = load_error(&path);
+    assert!(
+        msg.contains("vit.safetensors")
+            && msg.contains("backbone.patch_embed.projection.weight")
+            && msg.contains("stages.*.blocks.*"),
+        "{msg}"
+    );
+}

@@ -356,6 +356,88 @@ fn the_same_weights_in_two_layouts_have_no_drift_and_cka_one() {
     }
 }
 
+/// The OpenMMLab 3.x fixture (tests/fixtures/toolkit3_nested: timm 1.0.31 weights re-laid by
+/// the mapping of mmdetection 3.x's swin_converter, see tests/reference/make_fixtures.py)
+/// against its own tensors written in timm's layout: `compare` names every tensor as
+/// timm >= 0.9 does (patch merging `layers.{i}.downsample.*` at the start of stage i, read back
+/// from unfold order), finds no drift, and lists the per-stage output norms, which timm's
+/// layout has no place for, as unmatched.
+#[test]
+fn toolkit_layout_drift_uses_timm_names() {
+    let dir = tempfile::tempdir().unwrap();
+    let case = fixtures().join("toolkit3_nested");
+    let mm = case.join("weights.pth");
+    let ckpt = Checkpoint::open(&mm).unwrap();
+    assert_eq!(ckpt.layout.kind, LayoutKind::OpenMmlab3);
+    let cfg = ckpt.infer_config(&Default::default()).unwrap();
+    let parts = required_parts(&cfg);
+    let mut timm = HashMap::new();
+    for part in &parts {
+        let shape = ckpt.shape(part).unwrap();
+        timm.insert(part.canonical(), ckpt.load(part, &shape).unwrap());
+    }
+    let timm_path = dir.path().join("timm.safetensors");
+    save(timm, &timm_path);
+    assert_eq!(
+        Checkpoint::open(&timm_path).unwrap().layout.kind,
+        LayoutKind::Timm
+    );
+    let out = dir.path().join("out");
+    let img = case.join("input.png");
+    let run = mullion(&[
+        "compare",
+        "--base",
+        mm.to_str().unwrap(),
+        "--tuned",
+        timm_path.to_str().unwrap(),
+        "--images",
+        img.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+        "--pad-order",
+        "pad-then-shift",
+        "--small-stage",
+        "pad-up",
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    let drift = read_csv(&out.join("drift.csv"));
+    assert_eq!(drift.len(), parts.len());
+    for r in &drift {
+        assert_eq!(num(r, "relative_change"), 0.0, "{}", r["tensor"]);
+    }
+    for name in [
+        "patch_embed.proj.weight",
+        "layers.1.downsample.reduction.weight",
+        "layers.2.downsample.norm.bias",
+        "layers.0.blocks.1.attn.qkv.weight",
+        "layers.2.blocks.1.mlp.fc2.weight",
+    ] {
+        assert!(drift.iter().any(|r| r["tensor"] == name), "no row {name}");
+    }
+    let unmatched = std::fs::read_to_string(out.join("unmatched.txt")).unwrap();
+    let (only, rest): (Vec<&str>, Vec<&str>) = unmatched
+        .lines()
+        .filter(|l| !l.starts_with('#'))
+        .partition(|l| l.starts_with("only in"));
+    assert_eq!(only.len(), 6, "{unmatched}");
+    assert!(
+        only.iter()
+            .all(|l| l.starts_with("only in the base checkpoint: stage_norm.")),
+        "{unmatched}"
+    );
+    // Not compared: the toolkit file's buffer, neck and head tensors, nothing of the backbone.
+    assert_eq!(rest.len(), 10, "{unmatched}");
+    assert!(
+        rest.iter().all(|l| l.starts_with("base checkpoint: ")
+            && (!l.contains("backbone.") || l.contains("relative_position_index"))),
+        "{unmatched}"
+    );
+    let stages = read_csv(&out.join("stages.csv"));
+    for r in &stages {
+        assert!((num(r, "linear_cka") - 1.0).abs() < 1e-9, "{r:?}");
+    }
+}
+
 fn small_config_parts() -> usize {
     required_parts(&small_config()).len() + 2
 }

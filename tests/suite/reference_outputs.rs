@@ -164,6 +164,7 @@ fn layouts_and_default_semantics_are_detected() {
             "original" => "Original",
             "transformers4" => "Transformers4",
             "transformers5" => "Transformers5",
+            "openmmlab3" => "OpenMmlab3",
             other => panic!("{name}: unknown layout {other}"),
         };
         assert_eq!(format!("{:?}", ckpt.layout.kind), want_layout, "{name}");
@@ -322,6 +323,51 @@ fn the_other_semantics_do_not_match() {
     );
 }
 
+/// The toolkit fixture catches a loader that forgets the unfold reordering: its tensors,
+/// written unchanged under the original release's names (same block names, merging at the end
+/// of a stage, but in timm's channel order), match the reference up to stage 0 and miss it by
+/// far from stage 1 on, where patch merging comes in.
+#[test]
+fn toolkit_fixture_needs_the_unfold_reorder() {
+    use mullion::engine::checkpoint::Layout;
+    use mullion::engine::model::required_parts;
+    use mullion::engine::{LayoutKind, Part};
+    let (dir, case) = case("toolkit3_nested");
+    let file = dir.join(case["weights"].as_str().unwrap());
+    let ckpt = Checkpoint::open(&file).unwrap();
+    let raw: HashMap<String, Tensor> =
+        candle_core::pickle::read_all_with_key(&file, Some("state_dict"))
+            .unwrap()
+            .into_iter()
+            .collect();
+    let original = Layout {
+        kind: LayoutKind::Original,
+        prefix: "backbone.".into(),
+    };
+    let cfg = ckpt.infer_config(&ConfigOverride::default()).unwrap();
+    let mut parts = required_parts(&cfg);
+    for i in 0..cfg.depths.len() {
+        parts.extend(["weight", "bias"].map(|s| Part::StageNorm(i, s.into())));
+    }
+    let mut out = HashMap::new();
+    for part in &parts {
+        let from = ckpt.file_names(part).concat();
+        out.insert(original.file_names(part).concat(), raw[&from].clone());
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    candle_core::safetensors::save(&out, tmp.path().join("weights.safetensors")).unwrap();
+    std::fs::copy(dir.join("input.png"), tmp.path().join("input.png")).unwrap();
+    let mut unordered = case.clone();
+    unordered["weights"] = "weights.safetensors".into();
+    let run = run_case(tmp.path(), &unordered, semantics_of(&case));
+    let want = expected(&dir, &case);
+    assert!(rel_diff(&run.outputs["stage0"], &want["stage0"]) <= TOLERANCE);
+    for key in ["stage1", "stage2", "stage1_norm"] {
+        let d = rel_diff(&run.outputs[key], &want[key]);
+        assert!(d > 100.0 * TOLERANCE, "{key}: {d:.2e}");
+    }
+}
+
 /// The `features` command, with no options, reproduces each library's own computation: the
 /// contract other checks rely on (NHWC `[1, H, W, C]` tensors `embed`, `stage0`..).
 #[test]
@@ -332,6 +378,7 @@ fn features_command_defaults_reproduce_the_library() {
         "timm_odd",
         "detector_prefixed",
         "pickle_nested_bf16",
+        "toolkit3_nested",
     ] {
         let (dir, case) = case(name);
         let out = out_dir.path().join(format!("{name}.safetensors"));
@@ -354,6 +401,44 @@ fn features_command_defaults_reproduce_the_library() {
             };
             assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
         }
+    }
+}
+
+/// The OpenMMLab converters' unfold permutation (`correct_unfold_reduction_order` /
+/// `correct_unfold_norm_order`, mmdetection 3.x mmdet/models/backbones/swin.py), run by
+/// tests/reference/make_fixtures.py in torch 2.15.0 on a small numeric example (case.json of
+/// toolkit3_nested, "unfold_example"), is undone exactly by the loader's reordering.
+#[test]
+fn unfold_order_is_undone_as_the_converter_did_it() {
+    let (_, case) = case("toolkit3_nested");
+    let ex = &case["unfold_example"];
+    let matrix = |v: &Value| -> Tensor {
+        let rows: Vec<Vec<f32>> = serde_json::from_value(v.clone()).unwrap();
+        let (r, c) = (rows.len(), rows[0].len());
+        Tensor::from_vec(rows.concat(), (r, c), &Device::Cpu).unwrap()
+    };
+    let vector = |v: &Value| -> Tensor {
+        let x: Vec<f32> = serde_json::from_value(v.clone()).unwrap();
+        let n = x.len();
+        Tensor::from_vec(x, n, &Device::Cpu).unwrap()
+    };
+    for (converted, timm) in [
+        (matrix(&ex["converted"]), matrix(&ex["timm_order"])),
+        (
+            vector(&ex["norm_converted"]),
+            vector(&ex["norm_timm_order"]),
+        ),
+    ] {
+        assert_ne!(
+            converted.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            timm.flatten_all().unwrap().to_vec1::<f32>().unwrap()
+        );
+        let back = mullion::engine::checkpoint::from_unfold_order(&converted).unwrap();
+        assert_eq!(back.dims(), timm.dims());
+        assert_eq!(
+            back.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            timm.flatten_all().unwrap().to_vec1::<f32>().unwrap()
+        );
     }
 }
 
