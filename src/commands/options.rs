@@ -30,6 +30,8 @@ pub enum SmallStageArg {
     Clamp,
     PadUp,
     ClampPerAxis,
+    /// Windows fixed from the image size the model was built for (transformers' Swinv2).
+    AsBuilt,
 }
 
 impl From<SmallStageArg> for SmallStage {
@@ -38,6 +40,7 @@ impl From<SmallStageArg> for SmallStage {
             SmallStageArg::Clamp => SmallStage::Clamp,
             SmallStageArg::PadUp => SmallStage::PadUp,
             SmallStageArg::ClampPerAxis => SmallStage::ClampPerAxis,
+            SmallStageArg::AsBuilt => SmallStage::AsBuilt,
         }
     }
 }

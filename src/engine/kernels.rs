@@ -234,6 +234,66 @@ pub fn concat_layer_norm(
         });
 }
 
+/// Rows of `x` (`[tokens, c]`) picked by `index` into `out` (`[index.len(), c]`); an index
+/// equal to `tokens` is the zero padding token (V2 blocks attend on the raw rows, and V2 patch
+/// merging normalises after its reduction).
+pub fn gather_rows(x: &[f32], c: usize, index: &[u32], out: &mut [f32]) {
+    let tokens = x.len() / c;
+    assert_eq!(out.len(), index.len() * c, "output rows");
+    out.par_chunks_mut(ROWS_PER_TASK * c)
+        .zip(index.par_chunks(ROWS_PER_TASK))
+        .for_each(|(o, idx)| {
+            for (orow, &i) in o.chunks_exact_mut(c).zip(idx) {
+                let i = i as usize;
+                if i >= tokens {
+                    orow.fill(0.0);
+                } else {
+                    orow.copy_from_slice(&x[i * c..(i + 1) * c]);
+                }
+            }
+        });
+}
+
+/// `x += y`, element by element.
+pub fn add_assign(x: &mut [f32], y: &[f32]) {
+    assert_eq!(x.len(), y.len(), "rows");
+    x.par_chunks_mut(16 * 1024)
+        .zip(y.par_chunks(16 * 1024))
+        .for_each(|(a, b)| {
+            simd(|| {
+                for (a, &b) in a.iter_mut().zip(b) {
+                    *a += b;
+                }
+            })
+        });
+}
+
+/// Scaled cosine attention on the qkv rows (`[windows * n, 3C]`): every head's q and k are
+/// divided by their L2 norm (at least 1e-12, as the reference libraries' `normalize`) and the
+/// q rows multiplied by the head's scale, so that [`window_attention`]'s `q k^T` is
+/// `scale * cos(q, k)`.
+pub fn cosine_qk(qkv: &mut [f32], s: AttentionShape, scales: &[f32]) {
+    let c = s.heads * s.head_dim;
+    assert_eq!(qkv.len(), s.windows * s.n * 3 * c, "qkv rows");
+    assert_eq!(scales.len(), s.heads, "scales");
+    let d = s.head_dim;
+    qkv.par_chunks_mut(ROWS_PER_TASK * 3 * c).for_each(|rows| {
+        simd(|| {
+            for row in rows.chunks_exact_mut(3 * c) {
+                for (h, &scale) in scales.iter().enumerate() {
+                    for (part, factor) in [(0, scale), (1, 1.0)] {
+                        let v = &mut row[part * c + h * d..part * c + (h + 1) * d];
+                        let norm = sum_lanes(v.iter().map(|&a| a * a)).sqrt().max(1e-12);
+                        for a in v.iter_mut() {
+                            *a = *a / norm * factor;
+                        }
+                    }
+                }
+            }
+        })
+    });
+}
+
 /// LayerNorm of every row of `x` (`[rows, c]`) into `out`.
 pub fn layer_norm(x: &[f32], c: usize, weight: &[f32], bias: &[f32], eps: f32, out: &mut [f32]) {
     assert_eq!(x.len(), out.len(), "output rows");

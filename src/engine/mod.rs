@@ -7,6 +7,7 @@
 
 pub mod checkpoint;
 pub mod config;
+pub mod folder;
 pub mod geometry;
 pub mod input;
 pub mod kernels;

@@ -11,13 +11,15 @@ tests/fixtures/cases.json with every case of both scripts. Nothing expected is
 typed by hand: every value comes from running the library.
 
 Every parameter is randomised so that each V2 branch shapes the output:
-logit scales ln(10) + 0.7 N(0,1) with one head per block set to 5.0, above
-the clamp at ln(100); continuous position bias MLP weights N(0, 1/fan_in)
+logit scales ln(10) + 0.5 N(0,1) (the clamp at ln(100) is checked by a unit
+test instead: at a scale of 100 the library's float32 output is itself 1e-4
+from float64); continuous position bias MLP weights N(0, 1/fan_in)
 (second layer x2, so 16 sigmoid(.) spans most of (0, 16)); q and v biases
 0.5 N(0,1); LayerNorms 1 + 0.1 N(0,1) / 0.1 N(0,1); other linear layers as in
 make_fixtures.py.
 """
 import argparse
+import copy
 import math
 import os
 import sys
@@ -66,8 +68,10 @@ def randomise_v2(model, seed):
             if isinstance(mod, nn.LayerNorm):
                 val = 1.0 + 0.1 * n(p.shape) if pname == "weight" else 0.1 * n(p.shape)
             elif pname == "logit_scale":
-                val = math.log(10.0) + 0.7 * n(p.shape)
-                val.view(-1)[0] = 5.0  # above the clamp at ln(100)
+                # Moved off its init, but not up to the clamp: at a scale of 100 the library's
+                # own float32 output is 1e-4 away from float64, so no float32 port could be held
+                # to 1e-5 there (README.md, "Swin V2 cases").
+                val = math.log(10.0) + 0.5 * n(p.shape)
             elif pname in ("q_bias", "v_bias"):
                 val = 0.5 * n(p.shape)
             elif isinstance(mod, (nn.Linear, nn.Conv2d)):
@@ -100,6 +104,20 @@ def geometry(stages, grids, win_shift):
     return geo
 
 
+def float64_run(model, x, run):
+    """The expected values: the library's forward in float64 (same float32 weights, input cast),
+    stored as float32. V2's post-norm blocks make float32 rounding grow about ten times as much
+    as in V1 (the library's own float32 run lands 2e-6 to 1e-5 from float64 on these cases), so
+    a float32 reference would eat most of the 1e-5 budget by itself. Returns the outputs and the
+    library's float32 distance from them per output, which case.json records."""
+    out32 = run(model, x)
+    out64 = run(copy.deepcopy(model).double(), x.double())
+    out = {k: v.float().contiguous() for k, v in out64.items()}
+    gap = {k: float(f"{mf.rel_diff(out32[k].double(), out64[k].double()):.2e}") for k in out}
+    print("    library float32 vs float64:", gap)
+    return out, gap
+
+
 # --------------------------------------------------------------------------
 # timm SwinTransformerV2
 # --------------------------------------------------------------------------
@@ -125,7 +143,7 @@ def run_timm_v2(name, cfg):
     torch.manual_seed(cfg["seed"])
     model = timm_v2_build(cfg, (hp, wp))
     randomise_v2(model, cfg["seed"])
-    out = mf.timm_run(model, x)
+    out, gap = float64_run(model, x, mf.timm_run)
     grids = [tuple(out[f"stage{i}"].shape[1:3]) for i in range(len(cfg["depths"]))]
     for i, layer in enumerate(model.layers):
         assert list(layer.blocks[0].input_resolution) == list(grids[i])
@@ -152,7 +170,12 @@ def run_timm_v2(name, cfg):
     mf.write_case(name, cfg, u8, model.state_dict(), "weights.safetensors", out, geo, layout="timm",
                   pad_order="shift-then-pad", small_stage="clamp-per-axis", notes=" ".join(notes),
                   extra={"family": "v2", "override": override,
-                         "pretrained_window_sizes": cfg["trained"]})
+                         "pretrained_window_sizes": cfg["trained"], "precision": precision(gap)})
+
+
+def precision(gap):
+    return {"expected": "the library's forward in float64, stored as float32",
+            "library_float32_rel_diff": gap}
 
 
 # --------------------------------------------------------------------------
@@ -180,27 +203,34 @@ def run_tf_v2(name, cfg):
     cls = Swinv2Backbone if cfg["wrapper"] == "backbone" else Swinv2Model
     model = cls(conf).eval()
     randomise_v2(model, cfg["seed"])
-    rec = {}
-    hooks = [model.embeddings.register_forward_hook(lambda m, i, o: rec.__setitem__("embed", o))]
-    for i, stage in enumerate(model.encoder.layers):
-        # A stage returns (hidden_states, hidden_states_before_downsampling, output_dimensions).
-        hooks.append(stage.register_forward_hook(lambda m, i_, o, i=i: rec.__setitem__(f"stage{i}", o)))
-    res = model(pixel_values=x)
-    for hk in hooks:
-        hk.remove()
-    emb, dims = rec["embed"]
-    out = {"embed": mf.nhwc(emb, *dims)}
     grids = []
-    for i in range(n):
-        _, before, od = rec[f"stage{i}"]
-        grids.append((int(od[0]), int(od[1])))
-        out[f"stage{i}"] = mf.nhwc(before, *grids[-1])
-    if cfg["wrapper"] == "backbone":
-        for i, fm in enumerate(res.feature_maps):
-            assert torch.equal(fm.permute(0, 2, 3, 1).contiguous(), out[f"stage{i}"]), i
-    else:
-        last = out[f"stage{n - 1}"]
-        out["final_norm"] = mf.nhwc(res.last_hidden_state, last.shape[1], last.shape[2])
+
+    def run(m, x):
+        rec = {}
+        hooks = [m.embeddings.register_forward_hook(lambda _m, i, o: rec.__setitem__("embed", o))]
+        for i, stage in enumerate(m.encoder.layers):
+            # A stage returns (hidden_states, hidden_states_before_downsampling, output_dimensions).
+            hooks.append(stage.register_forward_hook(
+                lambda _m, i_, o, i=i: rec.__setitem__(f"stage{i}", o)))
+        res = m(pixel_values=x)
+        for hk in hooks:
+            hk.remove()
+        emb, dims = rec["embed"]
+        out = {"embed": emb.reshape(1, *dims, -1).clone()}
+        grids.clear()
+        for i in range(n):
+            _, before, od = rec[f"stage{i}"]
+            grids.append((int(od[0]), int(od[1])))
+            out[f"stage{i}"] = before.reshape(1, *grids[-1], -1).clone()
+        if cfg["wrapper"] == "backbone":
+            for i, fm in enumerate(res.feature_maps):
+                assert torch.equal(fm.permute(0, 2, 3, 1).contiguous(), out[f"stage{i}"]), i
+        else:
+            last = out[f"stage{n - 1}"]
+            out["final_norm"] = res.last_hidden_state.reshape(1, *last.shape[1:3], -1).clone()
+        return out
+
+    out, gap = float64_run(model, x, run)
     ws = [[{"window": [int(b.window_size)] * 2, "shift": [int(b.shift_size)] * 2} for b in stage.blocks]
           for stage in model.encoder.layers]
     geo = geometry(model.encoder.layers, grids, ws)
@@ -224,7 +254,7 @@ def run_tf_v2(name, cfg):
                      "feature_maps are the stage outputs before patch merging (checked equal to stage{i}).")
     else:
         notes.append("final_norm is Swinv2Model's layernorm on the last stage (last_hidden_state).")
-    extra = {"family": "v2", "pretrained_window_sizes": cfg["trained"],
+    extra = {"family": "v2", "pretrained_window_sizes": cfg["trained"], "precision": precision(gap),
              "config_json": "config.json", "image_size_built_for": cfg["image_size"]}
     # write_case clears the folder; the library's own files are written after it.
     mf.write_case(name, cfg, u8, {}, "model.safetensors", out, geo, layout="transformers4",

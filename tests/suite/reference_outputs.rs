@@ -50,12 +50,28 @@ fn semantics_of(case: &Value) -> Semantics {
         "clamp" => SmallStage::Clamp,
         "pad-up" => SmallStage::PadUp,
         "clamp-per-axis" => SmallStage::ClampPerAxis,
+        "as-built" => SmallStage::AsBuilt,
         other => panic!("unknown small-stage policy {other}"),
     };
     Semantics {
         pad_order,
         small_stage,
     }
+}
+
+/// The shape fields a case gives beside its weights (Swin V2 from timm: the window and the
+/// trained window, which the tensors do not record), as a `--config` file would.
+fn override_of(case: &Value) -> ConfigOverride {
+    case.get("override")
+        .map(|v| serde_json::from_value(v.clone()).expect("case override"))
+        .unwrap_or_default()
+}
+
+/// Open a case's checkpoint and build it with the case's override.
+fn open_case(dir: &Path, case: &Value) -> (Checkpoint, Backbone) {
+    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
+    let model = Backbone::from_checkpoint(&ckpt, &override_of(case)).unwrap();
+    (ckpt, model)
 }
 
 /// `max |got - want| / max |want|`.
@@ -78,8 +94,7 @@ struct Run {
 }
 
 fn run_case(dir: &Path, case: &Value, semantics: Semantics) -> Run {
-    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-    let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+    let (_, model) = open_case(dir, case);
     let img = load_image(dir.join(case["image"].as_str().unwrap())).unwrap();
     let x = normalise(&img, &Normalisation::IMAGENET).unwrap();
     let opts = ForwardOptions {
@@ -157,8 +172,7 @@ fn every_case_matches_its_reference_library() {
 fn layouts_and_default_semantics_are_detected() {
     for name in case_names() {
         let (dir, case) = case(&name);
-        let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-        let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+        let (ckpt, model) = open_case(&dir, &case);
         let want_layout = match case["layout"].as_str().unwrap() {
             "timm" => "Timm",
             "original" => "Original",
@@ -167,6 +181,11 @@ fn layouts_and_default_semantics_are_detected() {
             other => panic!("{name}: unknown layout {other}"),
         };
         assert_eq!(format!("{:?}", ckpt.layout.kind), want_layout, "{name}");
+        let want_family = match case["family"].as_str() {
+            Some("v2") => "V2",
+            _ => "V1",
+        };
+        assert_eq!(format!("{:?}", ckpt.family), want_family, "{name}: family");
         if case["default_semantics"].as_bool() != Some(false) {
             assert_eq!(
                 model.default_semantics,
@@ -201,8 +220,7 @@ fn geometry_matches_what_the_library_used() {
         let Some(stages) = case["geometry"].as_array() else {
             continue;
         };
-        let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-        let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+        let (_, model) = open_case(&dir, &case);
         let size = &case["size"];
         let (w, h) = (
             size[0].as_u64().unwrap() as usize,
@@ -286,8 +304,7 @@ fn the_other_semantics_do_not_match() {
                 ..right
             },
         ] {
-            let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-            let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+            let (_, model) = open_case(&dir, &case);
             let (w, h) = (
                 case["size"][0].as_u64().unwrap() as usize,
                 case["size"][1].as_u64().unwrap() as usize,
@@ -361,8 +378,7 @@ fn features_command_defaults_reproduce_the_library() {
 #[test]
 fn attention_tap_of_a_shifted_block() {
     let (dir, case) = case("timm_odd");
-    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-    let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+    let (_, model) = open_case(&dir, &case);
     let img = load_image(dir.join(case["image"].as_str().unwrap())).unwrap();
     let x = normalise(&img, &Normalisation::IMAGENET).unwrap();
     let opts = ForwardOptions {
