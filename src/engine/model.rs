@@ -689,7 +689,10 @@ impl LoadReport {
         LoadReport {
             file: ckpt.path.display().to_string(),
             format,
-            layout: ckpt.layout.kind.describe().to_string(),
+            layout: match (ckpt.family, ckpt.layout.kind.is_transformers()) {
+                (Family::V2, true) => "transformers Swinv2 (4.x and 5.x name it alike)".into(),
+                _ => ckpt.layout.kind.describe().to_string(),
+            },
             prefix: ckpt.layout.prefix.clone(),
             other_backbones: ckpt.other_prefixes.clone(),
             config: model.config.clone(),
@@ -757,15 +760,23 @@ impl std::fmt::Display for LoadReport {
             let tw: Vec<String> = v2
                 .trained_windows
                 .iter()
-                .map(|w| w.map_or("none (own window)".into(), |(a, b)| format!("{a}x{b}")))
+                .map(|w| w.map_or("own".into(), |(a, b)| format!("{a}x{b}")))
                 .collect();
+            let trained = if v2.trained_windows.iter().all(Option::is_none) {
+                "none: each block's own window normalises its coordinates".to_string()
+            } else {
+                format!(
+                    "{} (stage 0..{}; 'own': the block's own window)",
+                    tw.join(", "),
+                    tw.len().saturating_sub(1)
+                )
+            };
             writeln!(
                 f,
-                "position     continuous bias MLP ({} hidden), coordinates normalised by the \
-                 pretrained window per stage: {}",
-                v2.cpb_hidden,
-                tw.join(", ")
+                "position     continuous bias MLP ({} hidden), made once per window",
+                v2.cpb_hidden
             )?;
+            writeln!(f, "pretrained   windows {trained}")?;
             if let Some((h, w)) = v2.built_for {
                 writeln!(
                     f,

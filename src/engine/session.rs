@@ -88,6 +88,28 @@ pub fn read_override(path: Option<&Path>) -> Result<ConfigOverride> {
     if let Some(p) = over.patch {
         within("patch", p, MAX_PATCH)?;
     }
+    match &over.trained_window {
+        Some(super::config::TrainedWindow::All(m)) if *m > MAX_WINDOW => {
+            within("trained_window", *m, MAX_WINDOW)?
+        }
+        Some(super::config::TrainedWindow::PerStage(v)) => {
+            if v.len() > MAX_STAGES {
+                return Err(bad(
+                    "trained_window",
+                    format!("has more than {MAX_STAGES} entries"),
+                ));
+            }
+            for &m in v.iter().filter(|&&m| m > 0) {
+                within("trained_window", m, MAX_WINDOW)?;
+            }
+        }
+        _ => {}
+    }
+    if let Some(b) = over.built_for {
+        let (h, w) = b.dims();
+        within("built_for", h, 1 << 20)?;
+        within("built_for", w, 1 << 20)?;
+    }
     if let Some(c) = over.embed_dim {
         within("embed_dim", c, MAX_CHANNELS)?;
     }

@@ -420,3 +420,90 @@ fn attention_tap_of_a_shifted_block() {
     }
     assert!(across < 1e-20, "{across}");
 }
+
+/// `mullion features` on Swin V2: the transformers 5.23.0 fixtures opened as folders
+/// (config.json beside model.safetensors gives the window, the size the model was built for and
+/// the pretrained windows), the timm 1.0.31 fixtures with their window given in a --config file.
+/// Every tensor within the tolerance of the library's own values.
+#[test]
+fn features_command_on_swin_v2() {
+    let out_dir = tempfile::tempdir().unwrap();
+    for name in case_names() {
+        let (dir, case) = case(&name);
+        if case["family"].as_str() != Some("v2") {
+            continue;
+        }
+        let out = out_dir.path().join(format!("{name}.safetensors"));
+        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"));
+        cmd.arg("features");
+        if case.get("config_json").is_some() {
+            cmd.arg("--weights").arg(&dir);
+        } else {
+            let over = out_dir.path().join(format!("{name}.json"));
+            std::fs::write(&over, case["override"].to_string()).unwrap();
+            cmd.arg("--weights")
+                .arg(dir.join(case["weights"].as_str().unwrap()))
+                .arg("--config")
+                .arg(&over);
+        }
+        let run = cmd
+            .arg("--image")
+            .arg(dir.join(case["image"].as_str().unwrap()))
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .unwrap();
+        assert!(
+            run.status.success(),
+            "{name}: {}",
+            String::from_utf8_lossy(&run.stderr)
+        );
+        let got = candle_core::safetensors::load(&out, &Device::Cpu).unwrap();
+        let want = expected(&dir, &case);
+        for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
+            let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
+                continue;
+            };
+            assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
+        }
+    }
+}
+
+/// `mullion inspect` on a transformers folder names the family, the fields taken from
+/// config.json (as transformers 5.23.0 wrote it) and the pretrained windows in use; a --config
+/// file still wins over config.json.
+#[test]
+fn inspect_names_the_v2_family_and_config_json() {
+    let dir = fixtures().join("tfv2_model_trained_window");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"))
+        .arg("inspect")
+        .arg(&dir)
+        .output()
+        .unwrap();
+    assert!(out.status.success());
+    let text = String::from_utf8_lossy(&out.stdout);
+    for needle in [
+        "Swin V2",
+        "config.json",
+        "image_size",
+        "pretrained_window_sizes",
+        "8x8, 4x4, 4x4",
+        "built for    96x96",
+        "as-built",
+        "transformers Swinv2",
+    ] {
+        assert!(text.contains(needle), "missing '{needle}' in:\n{text}");
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let over = tmp.path().join("over.json");
+    std::fs::write(&over, r#"{"trained_window": 0}"#).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"))
+        .arg("inspect")
+        .arg(&dir)
+        .arg("--config")
+        .arg(&over)
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success() && !text.contains("8x8, 4x4"), "{text}");
+}
