@@ -679,6 +679,50 @@ mod tests {
         (f32::from_bits(v.to_bits() + 1) - v) as f64
     }
 
+    /// The cosine step against the composed tensor operations (`x / max(||x||, 1e-12)` per
+    /// head, q times its scale), with a zero k row (a padding token: no k bias) kept at zero.
+    #[test]
+    fn cosine_qk_matches_composed_normalisation() {
+        let s = AttentionShape {
+            windows: 3,
+            n: 4,
+            heads: 2,
+            head_dim: 5,
+        };
+        let c = 10;
+        let mut qkv = randn(s.windows * s.n * 3 * c, 41);
+        qkv[c..2 * c].fill(0.0); // row 0's k
+        let scales = [3.5f32, 100.0];
+        let t = Tensor::from_vec(qkv.clone(), (s.windows * s.n, 3, 2, 5), &Device::Cpu).unwrap();
+        let unit = |x: Tensor| {
+            let n = x
+                .sqr()
+                .unwrap()
+                .sum_keepdim(D::Minus1)
+                .unwrap()
+                .sqrt()
+                .unwrap()
+                .clamp(1e-12, f32::MAX)
+                .unwrap();
+            x.broadcast_div(&n).unwrap()
+        };
+        let sc = Tensor::from_vec(scales.to_vec(), (1, 2, 1), &Device::Cpu).unwrap();
+        let q = unit(t.narrow(1, 0, 1).unwrap().squeeze(1).unwrap())
+            .broadcast_mul(&sc)
+            .unwrap();
+        let k = unit(t.narrow(1, 1, 1).unwrap().squeeze(1).unwrap());
+        let v = t.narrow(1, 2, 1).unwrap().squeeze(1).unwrap();
+        let want: Vec<f32> = Tensor::stack(&[q, k, v], 1)
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        cosine_qk(&mut qkv, s, &scales);
+        assert!(max_rel(&qkv, &want) < 1e-6);
+        assert!(qkv[c..2 * c].iter().all(|&v| v == 0.0));
+    }
+
     /// erf against f64 `erf` of the C library at 200 001 points over [-6, 6] and near zero.
     #[test]
     fn erf_within_eight_ulp_of_libm() {

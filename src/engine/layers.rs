@@ -863,3 +863,95 @@ impl PatchMerging {
         Ok((y, out))
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::geometry::{AxisPlan, PadOrder};
+    use rand::SeedableRng;
+    use rand_distr::{Distribution, Normal};
+    use std::cell::RefCell;
+
+    /// Any tensor by its shape: norms near 1 / 0, everything else N(0, 1/fan_in) (a logit scale
+    /// above the clamp in head 0).
+    struct Source(RefCell<rand::rngs::StdRng>);
+
+    impl WeightSource for Source {
+        fn get(&self, part: Part, shape: &[usize]) -> Result<Tensor> {
+            let n: usize = shape.iter().product();
+            let name = part.canonical();
+            let fan_in = if shape.len() > 1 { shape[1..].iter().product() } else { 1 };
+            let std = if name.contains("norm") { 0.1 } else { (1.0 / fan_in as f64).sqrt() };
+            let d = Normal::new(0.0, std).unwrap();
+            let mut rng = self.0.borrow_mut();
+            let mut v: Vec<f32> = (0..n).map(|_| d.sample(&mut *rng) as f32).collect();
+            if name.ends_with("norm1.weight") || name.ends_with("norm2.weight") {
+                v.iter_mut().for_each(|x| *x += 1.0);
+            }
+            if name.ends_with("logit_scale") {
+                v.iter_mut().for_each(|x| *x += 2.3);
+                v[0] = 5.0;
+            }
+            Ok(Tensor::from_vec(v, shape, &Device::Cpu)?)
+        }
+        fn bias_table(&self, _: Part, _: usize) -> Result<Tensor> {
+            unreachable!("V2 blocks have no table")
+        }
+    }
+
+    fn v2_shape() -> V2Shape {
+        V2Shape {
+            cpb_hidden: 16,
+            trained_windows: vec![Some((6, 6))],
+            built_for: None,
+            mask_fill: -200.0,
+            norm_eps: 1e-5,
+        }
+    }
+
+    /// The logit scale is clamped at ln 100 before exp (timm 1.0.31 and transformers 5.23.0:
+    /// `torch.clamp(logit_scale, max=math.log(1 / 0.01)).exp()`).
+    #[test]
+    fn logit_scale_is_clamped_at_ln_100() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(5)));
+        let (scales, _) = v2_attention(&src, 3, &v2_shape(), 0, |s| {
+            Part::block(0, 0, &format!("attn.{s}"))
+        })
+        .unwrap();
+        assert!((scales[0] - 100.0).abs() < 1e-4, "{scales:?}");
+        assert!(scales[1] < 100.0 && scales[1] > 1.0);
+    }
+
+    /// A V2 block on the kernels equals the same block on the composed tensor operations
+    /// (tracked input), on a shifted, padded window layout; so does V2 patch merging.
+    #[test]
+    fn v2_block_and_merging_kernels_match_the_composed_path() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(9)));
+        let (dim, heads) = (12, 3);
+        let block = Block::new(&src, 0, 1, dim, heads, 24, (4, 4), Some(&v2_shape())).unwrap();
+        let geo = BlockGeometry {
+            rows: AxisPlan::new(7, 4, 2, PadOrder::PadThenShift),
+            cols: AxisPlan::new(6, 4, 2, PadOrder::PadThenShift),
+        };
+        let x = Tensor::randn(0f32, 2.0, (42, dim), &Device::Cpu).unwrap();
+        let (fast, probs) = block.forward(&x, &geo, true).unwrap();
+        let tracked = candle_core::Var::from_tensor(&x).unwrap();
+        let (slow, probs_slow) = block.forward(tracked.as_tensor(), &geo, true).unwrap();
+        let diff = |a: &Tensor, b: &Tensor| -> f32 {
+            let d: f32 = (a - b).unwrap().abs().unwrap().max_all().unwrap().to_scalar().unwrap();
+            let m: f32 = b.abs().unwrap().max_all().unwrap().to_scalar().unwrap();
+            d / m
+        };
+        assert!(diff(&fast, &slow.detach()) < 2e-6, "{}", diff(&fast, &slow.detach()));
+        // Head 0 runs at the clamped scale of 100, where a rounding of the cosine moves a
+        // logit by about 1e-5: the weights agree to that, not to the last bit.
+        let p = diff(&probs.unwrap(), &probs_slow.unwrap().detach());
+        assert!(p < 1e-4, "{p}");
+
+        let merge = PatchMerging::new(&src, 1, dim, true).unwrap();
+        let (fast, grid) = merge.forward(&x, (7, 6)).unwrap();
+        let (slow, _) = merge.forward(tracked.as_tensor(), (7, 6)).unwrap();
+        assert_eq!(grid, (4, 3));
+        assert!(diff(&fast, &slow.detach()) < 2e-6);
+    }
+}
