@@ -30,7 +30,7 @@ pub enum LayoutKind {
 }
 
 impl LayoutKind {
-    /// The transformers layouts (their Swinv2 keeps the 4.x names in 5.x too).
+    /// The transformers layouts (Swinv2 in 5.23 keeps the `attention.self.query` names of 4.x).
     pub fn is_transformers(self) -> bool {
         matches!(self, LayoutKind::Transformers4 | LayoutKind::Transformers5)
     }
@@ -230,7 +230,7 @@ fn block_name_tf4(part: &str) -> Recipe {
         "attn.qkv.weight" => qkv("weight"),
         "attn.qkv.bias" => qkv("bias"),
         "attn.relative_position_bias_table" => one("attention.self.relative_position_bias_table"),
-        // Swinv2 (4.x and 5.x alike)
+        // Swinv2 (transformers 5.23 keeps these 4.x-style names for it)
         "attn.q_bias" => one("attention.self.query.bias"),
         "attn.v_bias" => one("attention.self.value.bias"),
         "attn.logit_scale" => one("attention.self.logit_scale"),

@@ -690,7 +690,7 @@ impl LoadReport {
             file: ckpt.path.display().to_string(),
             format,
             layout: match (ckpt.family, ckpt.layout.kind.is_transformers()) {
-                (Family::V2, true) => "transformers Swinv2 (4.x and 5.x name it alike)".into(),
+                (Family::V2, true) => "transformers Swinv2 (attention.self.query/key/value names)".into(),
                 _ => ckpt.layout.kind.describe().to_string(),
             },
             prefix: ckpt.layout.prefix.clone(),
