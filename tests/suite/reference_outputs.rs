@@ -363,14 +363,19 @@ fn features_command_defaults_reproduce_the_library() {
             .status()
             .unwrap();
         assert!(status.success(), "{name}");
-        let got = candle_core::safetensors::load(&out, &Device::Cpu).unwrap();
-        let want = expected(&dir, &case);
-        for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
-            let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
-                continue;
-            };
-            assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
-        }
+        assert_features_match(name, &out, &dir, &case);
+    }
+}
+
+/// The tensors `mullion features` wrote to `out` match the case's expected ones.
+fn assert_features_match(name: &str, out: &Path, dir: &Path, case: &Value) {
+    let got = candle_core::safetensors::load(out, &Device::Cpu).unwrap();
+    let want = expected(dir, case);
+    for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
+        let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
+            continue;
+        };
+        assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
     }
 }
 
@@ -458,14 +463,7 @@ fn features_command_on_swin_v2() {
             "{name}: {}",
             String::from_utf8_lossy(&run.stderr)
         );
-        let got = candle_core::safetensors::load(&out, &Device::Cpu).unwrap();
-        let want = expected(&dir, &case);
-        for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
-            let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
-                continue;
-            };
-            assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
-        }
+        assert_features_match(&name, &out, &dir, &case);
     }
 }
 
@@ -475,13 +473,9 @@ fn features_command_on_swin_v2() {
 #[test]
 fn inspect_names_the_v2_family_and_config_json() {
     let dir = fixtures().join("tfv2_model_trained_window");
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"))
-        .arg("inspect")
-        .arg(&dir)
-        .output()
-        .unwrap();
-    assert!(out.status.success());
-    let text = String::from_utf8_lossy(&out.stdout);
+    let dir = dir.to_str().unwrap();
+    let run = crate::common::mullion(&["inspect", dir]);
+    assert!(run.ok(), "{}", run.stderr);
     for needle in [
         "Swin V2",
         "config.json",
@@ -492,18 +486,11 @@ fn inspect_names_the_v2_family_and_config_json() {
         "as-built",
         "transformers Swinv2",
     ] {
-        assert!(text.contains(needle), "missing '{needle}' in:\n{text}");
+        assert!(run.stdout.contains(needle), "missing '{needle}' in:\n{}", run.stdout);
     }
     let tmp = tempfile::tempdir().unwrap();
     let over = tmp.path().join("over.json");
     std::fs::write(&over, r#"{"trained_window": 0}"#).unwrap();
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"))
-        .arg("inspect")
-        .arg(&dir)
-        .arg("--config")
-        .arg(&over)
-        .output()
-        .unwrap();
-    let text = String::from_utf8_lossy(&out.stdout);
-    assert!(out.status.success() && !text.contains("8x8, 4x4"), "{text}");
+    let run = crate::common::mullion(&["inspect", dir, "--config", over.to_str().unwrap()]);
+    assert!(run.ok() && !run.stdout.contains("8x8, 4x4"), "{}", run.stdout);
 }
