@@ -128,7 +128,7 @@ pub const BLOCK_PARTS: [&str; 13] = [
 
 /// The block tensors of a Swin V2 checkpoint, in timm's spelling: the qkv weight with separate
 /// q and v biases (no k bias), the clamped logit scale per head, the position bias MLP.
-pub const BLOCK_PARTS_V2: [&str; 16] = [
+pub const BLOCK_PARTS_V2: [&str; 17] = [
     "norm1.weight",
     "norm1.bias",
     "attn.qkv.weight",
@@ -145,6 +145,7 @@ pub const BLOCK_PARTS_V2: [&str; 16] = [
     "mlp.fc1.weight",
     "mlp.fc1.bias",
     "mlp.fc2.weight",
+    "mlp.fc2.bias",
 ];
 
 /// The first or the second version of the family, told apart by the tensors.

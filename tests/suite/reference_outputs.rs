@@ -494,3 +494,37 @@ fn inspect_names_the_v2_family_and_config_json() {
     let run = crate::common::mullion(&["inspect", dir, "--config", over.to_str().unwrap()]);
     assert!(run.ok() && !run.stdout.contains("8x8, 4x4"), "{}", run.stdout);
 }
+
+/// `mullion compare` of a Swin V2 folder (transformers 5.23.0) with its own weights file: the
+/// V2 tensors (bias MLP, logit scales, q and v biases) are compared like any other, nothing is
+/// left unmatched, and no weight moved.
+#[test]
+fn compare_covers_the_v2_tensors() {
+    let dir = fixtures().join("tfv2_backbone_odd");
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("cmp");
+    let run = crate::common::mullion(&[
+        "compare",
+        "--base",
+        dir.to_str().unwrap(),
+        "--tuned",
+        dir.join("model.safetensors").to_str().unwrap(),
+        "--images",
+        dir.join("input.png").to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    let drift = crate::common::read_csv(&out.join("drift.csv"));
+    for t in [
+        "layers.0.blocks.1.attn.cpb_mlp.2.weight",
+        "layers.3.blocks.0.attn.logit_scale",
+        "layers.2.blocks.1.attn.q_bias",
+        "layers.1.blocks.0.mlp.fc2.bias",
+    ] {
+        let row = drift.iter().find(|r| r["tensor"] == t).expect(t);
+        assert_eq!(row["relative_change"], "0.0", "{t}");
+    }
+    let unmatched = std::fs::read_to_string(out.join("unmatched.txt")).unwrap();
+    assert!(unmatched.lines().all(|l| l.starts_with('#')), "{unmatched}");
+}
