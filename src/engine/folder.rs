@@ -50,6 +50,8 @@ pub struct BesideConfig {
     pub layer_norm_eps: Option<f32>,
     /// The fields taken from it, in words for the load report.
     pub fields: Vec<String>,
+    /// Why nothing was taken from it (not a transformers Swin configuration).
+    pub ignored: Option<String>,
 }
 
 /// Read the `config.json` beside `weights`, if there is one.
@@ -61,9 +63,29 @@ pub fn read_beside(weights: &Path) -> Result<Option<BesideConfig>> {
     let Some(bytes) = crate::io::read_regular(&path, MAX_JSON_BYTES)? else {
         return Ok(None);
     };
-    let v: Value = serde_json::from_slice(&bytes)
-        .map_err(|e| Error::bad_file(&path, format!("not valid JSON: {e}")))?;
-    parse(&path, &v).map(Some)
+    // Only a transformers Swin configuration says anything about these weights; any other
+    // config.json beside them (another tool's) is named in the load report and left alone.
+    let ignore = |why: String| BesideConfig {
+        path: path.clone(),
+        model_type: None,
+        over: ConfigOverride::default(),
+        layer_norm_eps: None,
+        fields: Vec::new(),
+        ignored: Some(why),
+    };
+    let v: Value = match serde_json::from_slice(&bytes) {
+        Ok(v) => v,
+        Err(e) => return Ok(Some(ignore(format!("not valid JSON ({e})")))),
+    };
+    match v["model_type"].as_str() {
+        Some("swin" | "swinv2") => parse(&path, &v).map(Some),
+        Some(other) => Ok(Some(ignore(format!(
+            "model_type '{other}' is not a Swin model"
+        )))),
+        None => Ok(Some(ignore(
+            "no model_type: not a transformers configuration".into(),
+        ))),
+    }
 }
 
 fn parse(path: &Path, v: &Value) -> Result<BesideConfig> {
@@ -162,6 +184,7 @@ fn parse(path: &Path, v: &Value) -> Result<BesideConfig> {
         over,
         layer_norm_eps,
         fields,
+        ignored: None,
     })
 }
 
@@ -193,8 +216,19 @@ mod tests {
     }
 
     #[test]
+    fn another_tools_config_is_left_alone() {
+        let dir = tempfile::tempdir().unwrap();
+        let weights = dir.path().join("w.safetensors");
+        std::fs::write(dir.path().join("config.json"), r#"{"depths": "deep"}"#).unwrap();
+        let b = read_beside(&weights).unwrap().unwrap();
+        assert!(b.ignored.unwrap().contains("model_type"));
+        assert!(b.fields.is_empty() && b.over.depths.is_none());
+    }
+
+    #[test]
     fn a_bad_field_names_the_file_and_field() {
-        let v: Value = serde_json::from_str(r#"{"window_size": "eight"}"#).unwrap();
+        let v: Value =
+            serde_json::from_str(r#"{"model_type": "swinv2", "window_size": "eight"}"#).unwrap();
         let e = parse(Path::new("/x/config.json"), &v).unwrap_err().to_string();
         assert!(e.contains("config.json") && e.contains("window_size"), "{e}");
     }

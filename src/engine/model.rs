@@ -668,6 +668,8 @@ pub struct LoadReport {
     /// The transformers `config.json` read beside the weights, and the fields taken from it.
     pub config_json: Option<String>,
     pub from_config_json: Vec<String>,
+    /// Why the `config.json` beside the weights was not used.
+    pub config_json_ignored: Option<String>,
 }
 
 impl LoadReport {
@@ -718,6 +720,7 @@ impl LoadReport {
                 .as_ref()
                 .map(|b| b.fields.clone())
                 .unwrap_or_default(),
+            config_json_ignored: ckpt.beside.as_ref().and_then(|b| b.ignored.clone()),
         }
     }
 }
@@ -796,7 +799,9 @@ impl std::fmt::Display for LoadReport {
                 tw.len().saturating_sub(1)
             )?;
         }
-        if let Some(path) = &self.config_json {
+        if let (Some(path), Some(why)) = (&self.config_json, &self.config_json_ignored) {
+            writeln!(f, "config.json {path} not used: {why}")?;
+        } else if let Some(path) = &self.config_json {
             writeln!(
                 f,
                 "config.json {} gave: {} (a --config file still overrides)",
