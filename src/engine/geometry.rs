@@ -611,6 +611,39 @@ mod tests {
         );
     }
 
+    // transformers 5.23.0 Swinv2Backbone built for image_size 64 (window 8, patch 4) and run on
+    // 101x77 (tests/fixtures/tfv2_backbone_odd, read off the library's layers): construction
+    // grids 16, 8, 4, 2 give windows 8 (shift 4), 8 (no shift), 4 and 2; every stage is padded
+    // up to its window.
+    #[test]
+    fn as_built_windows_come_from_the_built_size() {
+        let shape = ModelShape {
+            patch: 4,
+            depths: vec![2, 2, 2, 2],
+            window: (8, 8),
+            built_for: Some((64, 64)),
+        };
+        let g = Geometry::new(
+            (77, 101),
+            &shape,
+            sem(PadOrder::PadThenShift, SmallStage::AsBuilt),
+        );
+        let got: Vec<_> = g
+            .stages
+            .iter()
+            .map(|s| (s.grid, s.blocks[1].window(), s.blocks[1].shift(), s.padded()))
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ((20, 26), (8, 8), (4, 4), (24, 32)),
+                ((10, 13), (8, 8), (0, 0), (16, 16)),
+                ((5, 7), (4, 4), (0, 0), (8, 8)),
+                ((3, 4), (2, 2), (0, 0), (4, 4)),
+            ]
+        );
+    }
+
     fn check_inverse(b: &BlockGeometry) {
         let gather = b.gather_index();
         let scatter = b.scatter_index();

@@ -33,9 +33,11 @@ fn good_checkpoint(dir: &Path) -> (PathBuf, BTreeMap<String, Tensor>) {
 }
 
 fn load_error(path: &Path) -> String {
-    match Checkpoint::open(path)
-        .and_then(|c| Backbone::from_checkpoint(&c, &ConfigOverride::default()))
-    {
+    load_error_with(path, &ConfigOverride::default())
+}
+
+fn load_error_with(path: &Path, over: &ConfigOverride) -> String {
+    match Checkpoint::open(path).and_then(|c| Backbone::from_checkpoint(&c, over)) {
         Ok(_) => panic!("{} loaded", path.display()),
         Err(e) => e.to_string(),
     }
@@ -379,13 +381,8 @@ fn v2_without_its_bias_mlp_or_with_a_bad_merging_width() {
     let over = dir.path().join("window.json");
     std::fs::write(&over, r#"{"window": 8}"#).unwrap();
     let image = png(dir.path(), "in.png", 40, 36);
-    let load = |path: &Path| -> String {
-        let o: ConfigOverride = serde_json::from_str(r#"{"window": 8}"#).unwrap();
-        match Checkpoint::open(path).and_then(|c| Backbone::from_checkpoint(&c, &o)) {
-            Ok(_) => panic!("{} loaded", path.display()),
-            Err(e) => e.to_string(),
-        }
-    };
+    let window: ConfigOverride = serde_json::from_str(r#"{"window": 8}"#).unwrap();
+    let load = |path: &Path| load_error_with(path, &window);
     let features = |path: &Path| {
         mullion(&[
             "features",
