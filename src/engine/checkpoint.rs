@@ -946,7 +946,9 @@ impl Checkpoint {
         depths
             .iter()
             .enumerate()
-            .flat_map(|(i, &d)| (0..d).map(move |j| Part::block(i, j, "attn.relative_coords_table")))
+            .flat_map(|(i, &d)| {
+                (0..d).map(move |j| Part::block(i, j, "attn.relative_coords_table"))
+            })
             .filter_map(|p| self.shape(&p))
             .filter(|t| t.len() == 4 && t[1] % 2 == 1 && t[2] % 2 == 1)
             .map(|t| (t[1].div_ceil(2), t[2].div_ceil(2)))
@@ -1021,7 +1023,10 @@ pub fn square_window(rows: usize) -> Option<usize> {
 
 /// Why a tensor in the file was not used.
 pub fn ignored_reason(name: &str) -> &'static str {
-    if name.ends_with("relative_position_index") || name.ends_with("attn_mask") {
+    if name.ends_with("relative_position_index")
+        || name.ends_with("attn_mask")
+        || name.ends_with("relative_coords_table")
+    {
         "buffer, recomputed"
     } else if name.contains("head") || name.contains("classifier") || name.starts_with("fc.") {
         "head / classifier"

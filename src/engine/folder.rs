@@ -229,7 +229,12 @@ mod tests {
     fn a_bad_field_names_the_file_and_field() {
         let v: Value =
             serde_json::from_str(r#"{"model_type": "swinv2", "window_size": "eight"}"#).unwrap();
-        let e = parse(Path::new("/x/config.json"), &v).unwrap_err().to_string();
-        assert!(e.contains("config.json") && e.contains("window_size"), "{e}");
+        let e = parse(Path::new("/x/config.json"), &v)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("config.json") && e.contains("window_size"),
+            "{e}"
+        );
     }
 }

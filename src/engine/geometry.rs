@@ -631,7 +631,14 @@ mod tests {
         let got: Vec<_> = g
             .stages
             .iter()
-            .map(|s| (s.grid, s.blocks[1].window(), s.blocks[1].shift(), s.padded()))
+            .map(|s| {
+                (
+                    s.grid,
+                    s.blocks[1].window(),
+                    s.blocks[1].shift(),
+                    s.padded(),
+                )
+            })
             .collect();
         assert_eq!(
             got,

@@ -550,7 +550,11 @@ impl WindowAttention {
         let mut attn = match &self.cosine {
             Some(scales) => {
                 let unit = |t: Tensor| -> Result<Tensor> {
-                    let norm = t.sqr()?.sum_keepdim(D::Minus1)?.sqrt()?.clamp(1e-12, f32::MAX)?;
+                    let norm = t
+                        .sqr()?
+                        .sum_keepdim(D::Minus1)?
+                        .sqrt()?
+                        .clamp(1e-12, f32::MAX)?;
                     Ok(t.broadcast_div(&norm)?)
                 };
                 let scales = Tensor::from_vec(scales.clone(), (1, heads, 1, 1), &Device::Cpu)?;
@@ -621,13 +625,9 @@ fn v2_attention(
         .into_iter()
         .map(|s| s.min(max).exp())
         .collect();
-    let cpb = ContinuousBias::new(
-        src,
-        heads,
-        v2.cpb_hidden,
-        v2.trained_window(stage),
-        |s| part(&format!("cpb_mlp.{s}")),
-    )?;
+    let cpb = ContinuousBias::new(src, heads, v2.cpb_hidden, v2.trained_window(stage), |s| {
+        part(&format!("cpb_mlp.{s}"))
+    })?;
     Ok((scales, cpb))
 }
 
@@ -662,8 +662,7 @@ impl Block {
                 (bias, None, -100.0, LN_EPS)
             }
         };
-        let (qkv, q_scaled) =
-            WindowAttention::new(src, dim, heads, cosine.is_some(), sub("attn"))?;
+        let (qkv, q_scaled) = WindowAttention::new(src, dim, heads, cosine.is_some(), sub("attn"))?;
         Ok(Block {
             norm1: LayerNorm::with_eps(src, dim, sub("norm1"), eps)?,
             attn: WindowAttention {
@@ -848,7 +847,16 @@ impl PatchMerging {
             with_f32(x, |xs| {
                 with_f32(&self.norm.weight, |w| {
                     with_f32(&self.norm.bias, |b| {
-                        kernels::concat_layer_norm(xs, c, &idx, 4, w, b, self.norm.eps, &mut merged);
+                        kernels::concat_layer_norm(
+                            xs,
+                            c,
+                            &idx,
+                            4,
+                            w,
+                            b,
+                            self.norm.eps,
+                            &mut merged,
+                        );
                         Ok(())
                     })
                 })
@@ -880,8 +888,16 @@ mod tests {
         fn get(&self, part: Part, shape: &[usize]) -> Result<Tensor> {
             let n: usize = shape.iter().product();
             let name = part.canonical();
-            let fan_in = if shape.len() > 1 { shape[1..].iter().product() } else { 1 };
-            let std = if name.contains("norm") { 0.1 } else { (1.0 / fan_in as f64).sqrt() };
+            let fan_in = if shape.len() > 1 {
+                shape[1..].iter().product()
+            } else {
+                1
+            };
+            let std = if name.contains("norm") {
+                0.1
+            } else {
+                (1.0 / fan_in as f64).sqrt()
+            };
             let d = Normal::new(0.0, std).unwrap();
             let mut rng = self.0.borrow_mut();
             let mut v: Vec<f32> = (0..n).map(|_| d.sample(&mut *rng) as f32).collect();
@@ -938,11 +954,22 @@ mod tests {
         let tracked = candle_core::Var::from_tensor(&x).unwrap();
         let (slow, probs_slow) = block.forward(tracked.as_tensor(), &geo, true).unwrap();
         let diff = |a: &Tensor, b: &Tensor| -> f32 {
-            let d: f32 = (a - b).unwrap().abs().unwrap().max_all().unwrap().to_scalar().unwrap();
+            let d: f32 = (a - b)
+                .unwrap()
+                .abs()
+                .unwrap()
+                .max_all()
+                .unwrap()
+                .to_scalar()
+                .unwrap();
             let m: f32 = b.abs().unwrap().max_all().unwrap().to_scalar().unwrap();
             d / m
         };
-        assert!(diff(&fast, &slow.detach()) < 2e-6, "{}", diff(&fast, &slow.detach()));
+        assert!(
+            diff(&fast, &slow.detach()) < 2e-6,
+            "{}",
+            diff(&fast, &slow.detach())
+        );
         // Head 0 runs at the clamped scale of 100, where a rounding of the cosine moves a
         // logit by about 1e-5: the weights agree to that, not to the last bit.
         let p = diff(&probs.unwrap(), &probs_slow.unwrap().detach());

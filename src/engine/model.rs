@@ -144,7 +144,12 @@ impl Backbone {
         let last = config.dim(config.n_stages() - 1);
         let final_norm = if final_norm {
             let eps = v2.map_or(super::layers::LN_EPS, |v| v.norm_eps);
-            Some(LayerNorm::with_eps(src, last, |s| Part::FinalNorm(s.into()), eps)?)
+            Some(LayerNorm::with_eps(
+                src,
+                last,
+                |s| Part::FinalNorm(s.into()),
+                eps,
+            )?)
         } else {
             None
         };
@@ -692,7 +697,9 @@ impl LoadReport {
             file: ckpt.path.display().to_string(),
             format,
             layout: match (ckpt.family, ckpt.layout.kind.is_transformers()) {
-                (Family::V2, true) => "transformers Swinv2 (attention.self.query/key/value names)".into(),
+                (Family::V2, true) => {
+                    "transformers Swinv2 (attention.self.query/key/value names)".into()
+                }
                 _ => ckpt.layout.kind.describe().to_string(),
             },
             prefix: ckpt.layout.prefix.clone(),
@@ -711,10 +718,7 @@ impl LoadReport {
                 .filter_map(|s| s.blocks[0].attn.bias.made_for())
                 .collect(),
             family: ckpt.family.describe().to_string(),
-            config_json: ckpt
-                .beside
-                .as_ref()
-                .map(|b| b.path.display().to_string()),
+            config_json: ckpt.beside.as_ref().map(|b| b.path.display().to_string()),
             from_config_json: ckpt
                 .beside
                 .as_ref()
@@ -850,7 +854,7 @@ impl std::fmt::Display for LoadReport {
         if !buffers.is_empty() {
             writeln!(
                 f,
-                "  ignored    {} buffers (relative_position_index, attn_mask), recomputed",
+                "  ignored    {} buffers (relative_position_index, attn_mask, relative_coords_table), recomputed",
                 buffers.len()
             )?;
         }

@@ -412,7 +412,10 @@ fn v2_without_its_bias_mlp_or_with_a_bad_merging_width() {
     }
     let (code, err) = features(&path);
     assert_eq!(code, 1, "{err}");
-    assert!(err.contains("no_bias_mlp.safetensors") && err.contains("cpb_mlp"), "{err}");
+    assert!(
+        err.contains("no_bias_mlp.safetensors") && err.contains("cpb_mlp"),
+        "{err}"
+    );
 
     let mut narrow = full.clone();
     let w = narrow["layers.1.downsample.reduction.weight"].clone();

@@ -486,13 +486,21 @@ fn inspect_names_the_v2_family_and_config_json() {
         "as-built",
         "transformers Swinv2",
     ] {
-        assert!(run.stdout.contains(needle), "missing '{needle}' in:\n{}", run.stdout);
+        assert!(
+            run.stdout.contains(needle),
+            "missing '{needle}' in:\n{}",
+            run.stdout
+        );
     }
     let tmp = tempfile::tempdir().unwrap();
     let over = tmp.path().join("over.json");
     std::fs::write(&over, r#"{"trained_window": 0}"#).unwrap();
     let run = crate::common::mullion(&["inspect", dir, "--config", over.to_str().unwrap()]);
-    assert!(run.ok() && !run.stdout.contains("8x8, 4x4"), "{}", run.stdout);
+    assert!(
+        run.ok() && !run.stdout.contains("8x8, 4x4"),
+        "{}",
+        run.stdout
+    );
 }
 
 /// `mullion compare` of a Swin V2 folder (transformers 5.23.0) with its own weights file: the
