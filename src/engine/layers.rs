@@ -938,6 +938,23 @@ mod tests {
         assert!(scales[1] < 100.0 && scales[1] > 1.0);
     }
 
+    /// The bias MLP runs once per block and geometry: a second image of the same size reuses
+    /// the plan (and the bias in it); another size makes a new one.
+    #[test]
+    fn v2_bias_is_made_once_per_geometry() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(3)));
+        let block = Block::new(&src, 0, 0, 8, 2, 16, (4, 4), Some(&v2_shape())).unwrap();
+        let geo = |n| BlockGeometry {
+            rows: AxisPlan::new(n, 4, 0, PadOrder::ShiftThenPad),
+            cols: AxisPlan::new(6, 4, 0, PadOrder::ShiftThenPad),
+        };
+        let first = block.attn.plan(&geo(5)).unwrap();
+        assert!(Arc::ptr_eq(&first, &block.attn.plan(&geo(5)).unwrap()));
+        let other = block.attn.plan(&geo(9)).unwrap();
+        assert!(!Arc::ptr_eq(&first, &other));
+        assert_eq!(first.bias, other.bias); // same 4x4 window, same bias
+    }
+
     /// A V2 block on the kernels equals the same block on the composed tensor operations
     /// (tracked input), on a shifted, padded window layout; so does V2 patch merging.
     #[test]
