@@ -20,6 +20,7 @@ make_fixtures.py.
 """
 import argparse
 import copy
+import json
 import math
 import os
 import sys
@@ -49,6 +50,10 @@ V2_CASES = {
         lib="tf5", size=(112, 96), embed_dim=8, depths=[2, 2, 2], heads=[1, 2, 4],
         window=6, patch=4, mlp_ratio=2.0, seed=602, trained=[8, 4, 4], image_size=96,
         wrapper="model"),
+    "tfv2_classifier_eps": dict(
+        lib="tf5", size=(90, 70), embed_dim=8, depths=[2, 2, 2], heads=[1, 2, 4],
+        window=6, patch=4, mlp_ratio=2.0, seed=603, trained=[8, 4, 4], image_size=96,
+        wrapper="classifier", layer_norm_eps=1e-6),
 }
 
 CPB_NAMES = ("cpb_mlp", "continuous_position_bias_mlp")
@@ -184,7 +189,7 @@ def precision(gap):
 
 @torch.no_grad()
 def run_tf_v2(name, cfg):
-    from transformers import Swinv2Backbone, Swinv2Config, Swinv2Model
+    from transformers import Swinv2Backbone, Swinv2Config, Swinv2ForImageClassification, Swinv2Model
 
     W, H = cfg["size"]
     u8 = mf.make_image(W, H, cfg["seed"])
@@ -196,23 +201,27 @@ def run_tf_v2(name, cfg):
         window_size=cfg["window"], pretrained_window_sizes=cfg["trained"],
         mlp_ratio=cfg["mlp_ratio"], qkv_bias=True, hidden_dropout_prob=0.0,
         attention_probs_dropout_prob=0.0, drop_path_rate=0.0, hidden_act="gelu",
-        use_absolute_embeddings=False, layer_norm_eps=1e-5,
+        use_absolute_embeddings=False, layer_norm_eps=cfg.get("layer_norm_eps", 1e-5),
         out_features=[f"stage{i + 1}" for i in range(n)],
+        **({"num_labels": 3} if cfg["wrapper"] == "classifier" else {}),
     )
     torch.manual_seed(cfg["seed"])
-    cls = Swinv2Backbone if cfg["wrapper"] == "backbone" else Swinv2Model
+    cls = {"backbone": Swinv2Backbone, "model": Swinv2Model,
+           "classifier": Swinv2ForImageClassification}[cfg["wrapper"]]
     model = cls(conf).eval()
     randomise_v2(model, cfg["seed"])
     grids = []
 
     def run(m, x):
+        res_model = m
+        m = getattr(m, "swinv2", m)  # the classifier keeps the model under `swinv2.`
         rec = {}
         hooks = [m.embeddings.register_forward_hook(lambda _m, i, o: rec.__setitem__("embed", o))]
         for i, stage in enumerate(m.encoder.layers):
             # A stage returns (hidden_states, hidden_states_before_downsampling, output_dimensions).
             hooks.append(stage.register_forward_hook(
                 lambda _m, i_, o, i=i: rec.__setitem__(f"stage{i}", o)))
-        res = m(pixel_values=x)
+        res = res_model(pixel_values=x)
         for hk in hooks:
             hk.remove()
         emb, dims = rec["embed"]
@@ -225,15 +234,16 @@ def run_tf_v2(name, cfg):
         if cfg["wrapper"] == "backbone":
             for i, fm in enumerate(res.feature_maps):
                 assert torch.equal(fm.permute(0, 2, 3, 1).contiguous(), out[f"stage{i}"]), i
-        else:
+        elif cfg["wrapper"] == "model":
             last = out[f"stage{n - 1}"]
             out["final_norm"] = res.last_hidden_state.reshape(1, *last.shape[1:3], -1).clone()
         return out
 
     out, gap = float64_run(model, x, run)
+    enc = getattr(model, "swinv2", model).encoder
     ws = [[{"window": [int(b.window_size)] * 2, "shift": [int(b.shift_size)] * 2} for b in stage.blocks]
-          for stage in model.encoder.layers]
-    geo = geometry(model.encoder.layers, grids, ws)
+          for stage in enc.layers]
+    geo = geometry(enc.layers, grids, ws)
 
     d = os.path.join(mf.FIXTURES, name)
     os.makedirs(d, exist_ok=True)
@@ -252,8 +262,13 @@ def run_tf_v2(name, cfg):
     if cfg["wrapper"] == "backbone":
         notes.append("Swinv2Backbone has no per-stage output norms and no final layernorm: its "
                      "feature_maps are the stage outputs before patch merging (checked equal to stage{i}).")
-    else:
+    elif cfg["wrapper"] == "model":
         notes.append("final_norm is Swinv2Model's layernorm on the last stage (last_hidden_state).")
+    else:
+        notes.append("Swinv2ForImageClassification: every backbone key under 'swinv2.', a "
+                     "'classifier.*' head (3 labels) to ignore; layer_norm_eps 1e-6 in config.json "
+                     "(the blocks' and the final norm's; the patch embedding and merging norms keep "
+                     "1e-5). The final norm's output is pooled by the classifier and not stored.")
     extra = {"family": "v2", "pretrained_window_sizes": cfg["trained"], "precision": precision(gap),
              "config_json": "config.json", "image_size_built_for": cfg["image_size"]}
     # write_case clears the folder; the library's own files are written after it.
@@ -261,6 +276,11 @@ def run_tf_v2(name, cfg):
                   pad_order="pad-then-shift", small_stage="as-built", notes=" ".join(notes),
                   extra=extra)
     os.remove(os.path.join(d, "model.safetensors"))
+    with open(os.path.join(d, "case.json")) as f:
+        case = json.load(f)
+    case["config"]["layer_norm_eps"] = conf.layer_norm_eps
+    with open(os.path.join(d, "case.json"), "w") as f:
+        f.write(mf.dump_json(case))
     model.save_pretrained(d)
     keys = set(model.state_dict())
     from safetensors import safe_open
