@@ -186,6 +186,13 @@ fn layouts_and_default_semantics_are_detected() {
             _ => "V1",
         };
         assert_eq!(format!("{:?}", ckpt.family), want_family, "{name}: family");
+        if want_family == "V2" {
+            // The analytic count of the V2 shape (logit scales, q and v biases, the bias MLP
+            // instead of tables) equals the tensors the loader used.
+            let report = mullion::engine::LoadReport::new(&ckpt, &model);
+            let analytic = model.config.parameter_count(model.has_final_norm(), None);
+            assert_eq!(analytic, report.parameters, "{name}: parameter count");
+        }
         if case["default_semantics"].as_bool() != Some(false) {
             assert_eq!(
                 model.default_semantics,
