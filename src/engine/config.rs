@@ -244,7 +244,11 @@ impl Config {
             if i > 0 {
                 let cin = self.dim(i - 1) as u64;
                 // The norm is over 4C before the reduction, over 2C after it in V2.
-                let norm = if self.v2.is_some() { 2 * c } else { 2 * 4 * cin };
+                let norm = if self.v2.is_some() {
+                    2 * c
+                } else {
+                    2 * 4 * cin
+                };
                 n += norm + 4 * cin * c;
             }
             let heads = self.heads[i] as u64;
