@@ -16,6 +16,10 @@ pub enum Error {
         #[source]
         source: std::io::Error,
     },
+    /// A Swin V2 checkpoint whose window nothing states: its tensors do not record it, and
+    /// neither a `config.json` beside it nor an override gave it. The window asks for it.
+    #[error("{}: {problem}", path.display())]
+    WindowUnstated { path: PathBuf, problem: String },
     /// An argument or setting the user gave does not fit.
     #[error("{0}")]
     BadArgument(String),

@@ -128,6 +128,7 @@ mod tests {
                 patch: 4,
                 depths: vec![2],
                 window: (2, 2),
+                built_for: None,
             },
             Semantics {
                 pad_order: PadOrder::PadThenShift,

@@ -57,6 +57,16 @@ pub enum Action {
     OpenTyped(String),
     /// A checkpoint for the base slot (A), the one the checkpoint on screen is compared with.
     OpenBase(PathBuf),
+    /// Open a checkpoint again with the window the user typed in (Swin V2 files do not record
+    /// it); `trained`: the window it was pretrained at, 0 for the same.
+    OpenWithWindow {
+        path: PathBuf,
+        slot: super::loading::Slot,
+        window: usize,
+        trained: usize,
+    },
+    /// Leave the window question unanswered.
+    DismissWindowQuestion,
     /// A typed path for the base slot.
     OpenTypedBase(String),
     /// Leave the comparison: close the base checkpoint.

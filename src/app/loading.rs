@@ -7,7 +7,7 @@ use super::region_doc::{read_sidecar, sidecar_path_for, LoadedSidecar};
 use crate::analysis::compare::{weight_drift, Drift};
 use crate::engine::checkpoint::Checkpoint;
 use crate::engine::input::load_image;
-use crate::engine::{open_checkpoint, LoadedCheckpoint};
+use crate::engine::{open_checkpoint_with, ConfigOverride, LoadedCheckpoint};
 use crate::error::Result;
 use crate::io::{IMAGE_EXTENSIONS, WEIGHT_EXTENSIONS};
 use image::RgbImage;
@@ -137,7 +137,7 @@ impl Loader {
     }
 
     /// Open the checkpoint at `path` and build its backbone, for `slot`.
-    pub fn load_weights(&mut self, path: PathBuf, slot: Slot, wake: Wake) {
+    pub fn load_weights(&mut self, path: PathBuf, slot: Slot, over: ConfigOverride, wake: Wake) {
         let generation = match slot {
             Slot::Main => {
                 self.weights_generation += 1;
@@ -152,7 +152,7 @@ impl Loader {
         };
         let tx = self.tx.clone();
         spawn("mullion-load-checkpoint", move || {
-            let result = open_checkpoint(&path, None);
+            let result = open_checkpoint_with(&path, &over);
             let _ = tx.send(Envelope {
                 generation,
                 loaded: Loaded::Weights { path, slot, result },

@@ -53,6 +53,8 @@ pub struct Opening {
     pub weights: Option<PathBuf>,
     /// A checkpoint to compare with (A).
     pub base: Option<PathBuf>,
+    /// Shape overrides for those checkpoints (`--config`, `--base-config`).
+    pub overrides: Vec<(PathBuf, crate::engine::ConfigOverride)>,
 }
 
 /// Open the window on `open`, at `size` points (default [`DEFAULT_SIZE`]).
@@ -61,6 +63,7 @@ pub fn run(open: Opening, size: Option<(f32, f32)>) -> Result<()> {
         images,
         weights,
         base,
+        overrides,
     } = open;
     let (w, h) = size.unwrap_or(DEFAULT_SIZE);
     let options = eframe::NativeOptions {
@@ -79,6 +82,7 @@ pub fn run(open: Opening, size: Option<(f32, f32)>) -> Result<()> {
                 .unwrap_or_default();
             let mut window = Window::new(settings);
             window.bench.attach(&cc.egui_ctx);
+            window.bench.shape_overrides = overrides;
             match &weights {
                 Some(w) => {
                     window.bench.random_if_weights_fail = true;
@@ -107,5 +111,6 @@ pub fn demo_inputs() -> Opening {
         images: vec![root],
         weights: has_weights.then_some(weights),
         base: (has_weights && base.exists()).then_some(base),
+        overrides: Vec::new(),
     }
 }

@@ -16,10 +16,13 @@ use crate::analysis::compare::{group_drift, Drift, GroupDrift};
 use crate::analysis::inspect::{query_attention, QueryAttention};
 use crate::analysis::padding::{all_attention_bytes, variant_input, variant_options, Variant};
 use crate::analysis::parse_map_kind;
+use crate::engine::config::{TrainedWindow, WindowSpec};
 use crate::engine::input::{normalise, DEFAULT_MEMORY_LIMIT};
 use crate::engine::model::check_budget;
 use crate::engine::worker::{Event, Job};
-use crate::engine::{Backbone, Config, ForwardOptions, LoadReport, Progress, StageOutputs};
+use crate::engine::{
+    Backbone, Config, ConfigOverride, ForwardOptions, LoadReport, Progress, StageOutputs,
+};
 use crate::error::{Error, Result};
 use crate::io::{file_name, is_image_path, is_weights_path};
 use std::collections::HashMap;
@@ -127,6 +130,13 @@ struct Pending {
     progress: Option<Progress>,
 }
 
+/// The question the window asks when a Swin V2 checkpoint does not state its window.
+#[derive(Clone, Debug, PartialEq)]
+pub struct WindowQuestion {
+    pub path: PathBuf,
+    pub slot: Slot,
+}
+
 pub struct Workbench {
     pub settings: Settings,
     pub images: Vec<PathBuf>,
@@ -163,6 +173,11 @@ pub struct Workbench {
     pub random_if_weights_fail: bool,
     /// Bumped when the path field should take the keyboard (no file dialog could be shown).
     pub path_focus_requests: u64,
+    /// Shape overrides per checkpoint path (`mullion open --config`, or a window typed in);
+    /// the last one given for a path applies.
+    pub shape_overrides: Vec<(PathBuf, ConfigOverride)>,
+    /// A checkpoint that did not load because nothing states its window: the window asks.
+    pub window_question: Option<WindowQuestion>,
     pending: Option<Pending>,
     pending_base: Option<Pending>,
     /// A pass that keeps one block's attention, for the inspector, and its result.
@@ -210,6 +225,8 @@ impl Workbench {
             last_export: None,
             random_if_weights_fail: false,
             path_focus_requests: 0,
+            shape_overrides: Vec::new(),
+            window_question: None,
             pending: None,
             pending_base: None,
             pending_attention: None,
@@ -343,8 +360,48 @@ impl Workbench {
     /// Load a checkpoint on a loader thread; on failure the previous one stays.
     pub fn open_weights(&mut self, path: &Path) {
         let wake = self.wake();
+        let over = self.shape_override(path);
         self.loader
-            .load_weights(path.to_path_buf(), Slot::Main, wake);
+            .load_weights(path.to_path_buf(), Slot::Main, over, wake);
+    }
+
+    /// The shape overrides given for `path` (`mullion open --config`, or the window size typed
+    /// into the window's question); none by default.
+    pub fn shape_override(&self, path: &Path) -> ConfigOverride {
+        self.shape_overrides
+            .iter()
+            .rev()
+            .find(|(p, _)| p == path)
+            .map(|(_, o)| o.clone())
+            .unwrap_or_default()
+    }
+
+    /// Open `path` into `slot` with the window the user stated for it: Swin V2 checkpoints do
+    /// not record theirs. `trained` is the window it was pretrained at (0: the same).
+    pub fn open_with_window(&mut self, path: &Path, slot: Slot, window: usize, trained: usize) {
+        let mut over = self.shape_override(path);
+        over.window = Some(WindowSpec::Square(window));
+        over.trained_window = (trained > 0).then_some(TrainedWindow::All(trained));
+        self.shape_overrides.push((path.to_path_buf(), over));
+        self.window_question = None;
+        match slot {
+            Slot::Main => self.open_weights(path),
+            Slot::Base => self.open_base(path),
+        }
+    }
+
+    /// A failed checkpoint load: said in the log, and when only the window was missing, asked.
+    fn weights_failed(&mut self, slot: Slot, e: crate::error::Error) {
+        if let crate::error::Error::WindowUnstated { path, .. } = &e {
+            self.window_question = Some(WindowQuestion {
+                path: path.clone(),
+                slot,
+            });
+        }
+        match slot {
+            Slot::Main => self.error(e),
+            Slot::Base => self.error(format!("base (A) not loaded: {e}")),
+        }
     }
 
     /// Load the checkpoint to compare with (A) on a loader thread; on failure the previous
@@ -358,8 +415,9 @@ impl Workbench {
             return;
         }
         let wake = self.wake();
+        let over = self.shape_override(path);
         self.loader
-            .load_weights(path.to_path_buf(), Slot::Base, wake);
+            .load_weights(path.to_path_buf(), Slot::Base, over, wake);
     }
 
     /// Leave the comparison: the base, its runs and the drift go; the view shows one
@@ -461,7 +519,7 @@ impl Workbench {
                     self.start_drift();
                     self.request();
                 }
-                Err(e) => self.error(format!("base (A) not loaded: {e}")),
+                Err(e) => self.weights_failed(Slot::Base, e),
             },
             Loaded::Drift { pair, result } => {
                 let groups = result.as_ref().map(group_drift).unwrap_or_default();
@@ -491,7 +549,7 @@ impl Workbench {
                     self.request();
                 }
                 Err(e) => {
-                    self.error(e);
+                    self.weights_failed(Slot::Main, e);
                     if self.weights.is_none() && self.random_if_weights_fail {
                         self.info("using random weights instead");
                         self.use_random_weights();
@@ -1204,6 +1262,13 @@ impl Workbench {
                 }
             }
             Action::OpenBase(p) => self.open_base(&p),
+            Action::OpenWithWindow {
+                path,
+                slot,
+                window,
+                trained,
+            } => self.open_with_window(&path, slot, window, trained),
+            Action::DismissWindowQuestion => self.window_question = None,
             Action::OpenTypedBase(s) => {
                 let p = PathBuf::from(s.trim());
                 if s.trim().is_empty() {

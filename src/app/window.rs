@@ -18,6 +18,7 @@ use super::panels::region_panel::RegionPanel;
 use super::panels::region_table::RegionTable;
 use super::panels::sources::{route_drop, SourceBar};
 use super::panels::strip::StageStrip;
+use super::panels::window_question::WindowQuestionPanel;
 use super::settings::Settings;
 use super::state::Workbench;
 use std::path::PathBuf;
@@ -39,6 +40,7 @@ pub struct Panels {
     pub report: LoadReportWindow,
     pub drift: DriftPanel,
     pub profiles: ProfilesPanel,
+    pub window_question: WindowQuestionPanel,
 }
 
 /// The whole window: the state and the panels.
@@ -138,6 +140,7 @@ impl Window {
         if b.show_report {
             actions.extend(p.report.ui(ui, b));
         }
+        actions.extend(p.window_question.ui(ui, b));
         if b.show_drift {
             actions.extend(p.drift.ui(ui, b));
         }

@@ -8,9 +8,9 @@ use std::path::PathBuf;
 
 #[derive(Args, Debug)]
 pub struct InspectArgs {
-    /// Checkpoint file.
+    /// Checkpoint file, or a transformers folder (config.json beside model.safetensors).
     pub checkpoint: PathBuf,
-    /// JSON file overriding the inferred shape.
+    /// JSON file overriding the inferred shape (and any config.json beside the weights).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
     /// Print the report as JSON.

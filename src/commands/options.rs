@@ -30,6 +30,8 @@ pub enum SmallStageArg {
     Clamp,
     PadUp,
     ClampPerAxis,
+    /// Windows fixed from the image size the model was built for (transformers' Swinv2).
+    AsBuilt,
 }
 
 impl From<SmallStageArg> for SmallStage {
@@ -38,6 +40,7 @@ impl From<SmallStageArg> for SmallStage {
             SmallStageArg::Clamp => SmallStage::Clamp,
             SmallStageArg::PadUp => SmallStage::PadUp,
             SmallStageArg::ClampPerAxis => SmallStage::ClampPerAxis,
+            SmallStageArg::AsBuilt => SmallStage::AsBuilt,
         }
     }
 }
@@ -241,11 +244,13 @@ pub fn parse_memory_gb(s: &str) -> std::result::Result<f64, String> {
 /// Options shared by every command that runs a checkpoint on an image.
 #[derive(Args, Debug, Clone)]
 pub struct RunArgs {
-    /// Checkpoint file (.safetensors, .pth, .pt, .bin).
+    /// Checkpoint file (.safetensors, .pth, .pt, .bin), or a transformers folder (config.json
+    /// beside model.safetensors).
     #[arg(long, value_name = "FILE")]
     pub weights: PathBuf,
-    /// JSON file overriding the shape read from the tensors (patch, embed_dim, depths, heads,
-    /// window, mlp_ratio, pad_order, small_stage).
+    /// JSON file overriding the shape read from the tensors and any config.json beside them
+    /// (patch, embed_dim, depths, heads, window, mlp_ratio, pad_order, small_stage; Swin V2:
+    /// trained_window, one number or one per stage, and built_for, the image size).
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
     /// Padding order in shifted blocks [default: from the checkpoint's layout].

@@ -16,6 +16,13 @@ pub struct OpenArgs {
     /// previous release); the window then shows A, B and their difference per stage.
     #[arg(long, value_name = "FILE")]
     pub base: Option<PathBuf>,
+    /// JSON file overriding the shape read from the checkpoint's tensors (as for `features`;
+    /// e.g. a Swin V2 checkpoint's `{"window": 8}`, which its tensors do not record).
+    #[arg(long, value_name = "FILE", requires = "weights")]
+    pub config: Option<PathBuf>,
+    /// The same for the base checkpoint (A).
+    #[arg(long, value_name = "FILE", requires = "base")]
+    pub base_config: Option<PathBuf>,
     /// Size of the window in points, WIDTHxHEIGHT.
     #[arg(long, value_parser = parse_window_size, value_name = "WxH")]
     pub window_size: Option<(f32, f32)>,
@@ -41,6 +48,16 @@ pub fn demo() -> Result<()> {
 }
 
 pub fn open(args: &OpenArgs) -> Result<()> {
+    // Read before the window opens, so that a broken file is a usage error on the terminal.
+    let mut overrides = Vec::new();
+    for (path, config) in [
+        (&args.weights, &args.config),
+        (&args.base, &args.base_config),
+    ] {
+        if let (Some(p), Some(c)) = (path, config) {
+            overrides.push((p.clone(), crate::engine::read_override(Some(c))?));
+        }
+    }
     let opening = if args.images.is_empty() {
         let demo = crate::app::demo_inputs();
         // The demo pair comes along only with the demo checkpoint.
@@ -52,12 +69,14 @@ pub fn open(args: &OpenArgs) -> Result<()> {
             images: demo.images,
             weights: args.weights.clone().or(demo.weights),
             base,
+            overrides,
         }
     } else {
         crate::app::Opening {
             images: args.images.clone(),
             weights: args.weights.clone(),
             base: args.base.clone(),
+            overrides,
         }
     };
     crate::app::run(opening, args.window_size)

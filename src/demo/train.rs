@@ -42,6 +42,7 @@ pub fn demo_config() -> Config {
         heads: vec![1, 2, 4, 8],
         window: (7, 7),
         mlp_ratio: 4.0,
+        v2: None,
     }
 }
 

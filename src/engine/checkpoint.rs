@@ -5,7 +5,8 @@
 //! one canonical part name ([`Part`]), reads the model shape off the tensor shapes, and keeps a
 //! plain-words account of what it used, ignored and could not find ([`LoadReport`]).
 
-use super::config::{Config, ConfigOverride, MAX_BLOCKS_PER_STAGE, MAX_STAGES};
+use super::config::{Config, ConfigOverride, V2Shape, MAX_BLOCKS_PER_STAGE, MAX_STAGES};
+use super::folder::{self, BesideConfig};
 use crate::engine::geometry::{PadOrder, Semantics, SmallStage};
 use crate::error::{Error, Result};
 use candle_core::{DType, Device, Tensor};
@@ -34,6 +35,11 @@ pub enum LayoutKind {
 }
 
 impl LayoutKind {
+    /// The transformers layouts (Swinv2 in 5.23 keeps the `attention.self.query` names of 4.x).
+    pub fn is_transformers(self) -> bool {
+        matches!(self, LayoutKind::Transformers4 | LayoutKind::Transformers5)
+    }
+
     pub fn describe(self) -> &'static str {
         match self {
             LayoutKind::Timm => "timm >= 0.9 (patch merging at the start of each stage)",
@@ -134,6 +140,73 @@ pub const BLOCK_PARTS: [&str; 13] = [
     "mlp.fc2.bias",
 ];
 
+/// The block tensors of a Swin V2 checkpoint, in timm's spelling: the qkv weight with separate
+/// q and v biases (no k bias), the clamped logit scale per head, the position bias MLP.
+pub const BLOCK_PARTS_V2: [&str; 17] = [
+    "norm1.weight",
+    "norm1.bias",
+    "attn.qkv.weight",
+    "attn.q_bias",
+    "attn.v_bias",
+    "attn.logit_scale",
+    "attn.cpb_mlp.0.weight",
+    "attn.cpb_mlp.0.bias",
+    "attn.cpb_mlp.2.weight",
+    "attn.proj.weight",
+    "attn.proj.bias",
+    "norm2.weight",
+    "norm2.bias",
+    "mlp.fc1.weight",
+    "mlp.fc1.bias",
+    "mlp.fc2.weight",
+    "mlp.fc2.bias",
+];
+
+/// The first or the second version of the family, told apart by the tensors.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize)]
+pub enum Family {
+    V1,
+    V2,
+}
+
+impl Family {
+    pub fn describe(self) -> &'static str {
+        match self {
+            Family::V1 => "Swin V1 (pre-norm blocks, learnt bias tables)",
+            Family::V2 => {
+                "Swin V2 (scaled cosine attention, continuous position bias MLP, post-norm blocks)"
+            }
+        }
+    }
+
+    /// The second version's markers: a logit scale, a bias MLP or a q bias beside the qkv
+    /// weight, in any block under `prefix`.
+    fn detect(prefix: &str, names: &mut dyn Iterator<Item = &String>) -> Family {
+        const MARKERS: [&str; 4] = [
+            ".logit_scale",
+            ".cpb_mlp.",
+            ".continuous_position_bias_mlp.",
+            ".attn.q_bias",
+        ];
+        let v2 = names
+            .filter_map(|n| n.strip_prefix(prefix))
+            .any(|n| MARKERS.iter().any(|m| n.contains(m)));
+        if v2 {
+            Family::V2
+        } else {
+            Family::V1
+        }
+    }
+}
+
+/// The block tensors of a family.
+pub fn block_parts(family: Family) -> &'static [&'static str] {
+    match family {
+        Family::V1 => &BLOCK_PARTS,
+        Family::V2 => &BLOCK_PARTS_V2,
+    }
+}
+
 /// How one canonical tensor is read from the file.
 #[derive(Clone, Debug, PartialEq)]
 enum Recipe {
@@ -176,6 +249,15 @@ fn block_name_tf4(part: &str) -> Recipe {
         "attn.qkv.weight" => qkv("weight"),
         "attn.qkv.bias" => qkv("bias"),
         "attn.relative_position_bias_table" => one("attention.self.relative_position_bias_table"),
+        // Swinv2 (transformers 5.23 keeps these 4.x-style names for it)
+        "attn.q_bias" => one("attention.self.query.bias"),
+        "attn.v_bias" => one("attention.self.value.bias"),
+        "attn.logit_scale" => one("attention.self.logit_scale"),
+        _ if part.starts_with("attn.cpb_mlp.") => one(&part.replacen(
+            "attn.cpb_mlp.",
+            "attention.self.continuous_position_bias_mlp.",
+            1,
+        )),
         _ => {
             let (module, wb) = part.rsplit_once('.').unwrap_or((part, ""));
             let m = match module {
@@ -371,6 +453,10 @@ pub struct Checkpoint {
     pub layout: Layout,
     /// Backbone prefixes found besides the one used.
     pub other_prefixes: Vec<String>,
+    /// Swin V1 or V2.
+    pub family: Family,
+    /// The transformers `config.json` beside the file, when there is one.
+    pub beside: Option<BesideConfig>,
     used: RefCell<BTreeSet<String>>,
 }
 
@@ -419,7 +505,7 @@ fn sniff(path: &Path) -> Result<&'static str> {
 
 /// Which family of layouts a patch-embedding marker belongs to.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
-enum Family {
+enum KeyScheme {
     /// timm and the original release (`patch_embed.proj`).
     TimmLike,
     /// transformers 4.x and 5.x.
@@ -429,13 +515,13 @@ enum Family {
 }
 
 /// Markers that identify a layout: the patch embedding's projection weight.
-const EMBED_MARKERS: [(&str, Family); 3] = [
-    ("patch_embed.proj.weight", Family::TimmLike),
+const EMBED_MARKERS: [(&str, KeyScheme); 3] = [
+    ("patch_embed.proj.weight", KeyScheme::TimmLike),
     (
         "embeddings.patch_embeddings.projection.weight",
-        Family::Transformers,
+        KeyScheme::Transformers,
     ),
-    ("patch_embed.projection.weight", Family::OpenMmlab),
+    ("patch_embed.projection.weight", KeyScheme::OpenMmlab),
 ];
 
 /// Find the layout and prefix from the tensor names.
@@ -443,17 +529,17 @@ fn detect_layout(
     path: &Path,
     shapes: &BTreeMap<String, (Vec<usize>, DType)>,
 ) -> Result<(Layout, Vec<String>)> {
-    let mut found: Vec<(String, Family)> = Vec::new();
+    let mut found: Vec<(String, KeyScheme)> = Vec::new();
     // OpenMMLab markers without any `stages.*` block beside them (another model's embedding).
     let mut stageless: Vec<String> = Vec::new();
     for name in shapes.keys() {
-        for (marker, family) in EMBED_MARKERS {
+        for (marker, scheme) in EMBED_MARKERS {
             if let Some(prefix) = name.strip_suffix(marker) {
                 if !(prefix.is_empty() || prefix.ends_with('.')) {
                     continue;
                 }
                 let blocks = format!("{prefix}stages.");
-                if family == Family::OpenMmlab
+                if scheme == KeyScheme::OpenMmlab
                     && !shapes
                         .keys()
                         .any(|k| k.starts_with(&blocks) && k.contains(".blocks."))
@@ -461,7 +547,7 @@ fn detect_layout(
                     stageless.push(name.clone());
                     continue;
                 }
-                found.push((prefix.to_string(), family));
+                found.push((prefix.to_string(), scheme));
             }
         }
     }
@@ -488,17 +574,17 @@ fn detect_layout(
     }
     // Several backbones (e.g. a teacher and a student): take the shortest prefix.
     found.sort_by_key(|(p, _)| (p.len(), p.clone()));
-    let (prefix, family) = found[0].clone();
+    let (prefix, scheme) = found[0].clone();
     let others = found[1..].iter().map(|(p, _)| p.clone()).collect();
     let has = |n: &str| shapes.contains_key(&format!("{prefix}{n}"));
-    let kind = match family {
-        Family::Transformers if has("encoder.layers.0.blocks.0.attention.self.query.weight") => {
+    let kind = match scheme {
+        KeyScheme::Transformers if has("encoder.layers.0.blocks.0.attention.self.query.weight") => {
             LayoutKind::Transformers4
         }
-        Family::Transformers => LayoutKind::Transformers5,
-        Family::OpenMmlab => LayoutKind::OpenMmlab3,
-        Family::TimmLike if has("layers.0.downsample.reduction.weight") => LayoutKind::Original,
-        Family::TimmLike => LayoutKind::Timm,
+        KeyScheme::Transformers => LayoutKind::Transformers5,
+        KeyScheme::OpenMmlab => LayoutKind::OpenMmlab3,
+        KeyScheme::TimmLike if has("layers.0.downsample.reduction.weight") => LayoutKind::Original,
+        KeyScheme::TimmLike => LayoutKind::Timm,
     };
     // An absolute position embedding is added to the patch tokens; running without it would
     // compute another function, so such a file is refused rather than half used.
@@ -522,7 +608,7 @@ fn detect_layout(
 impl Checkpoint {
     /// Open a checkpoint, read its tensor index and detect its layout. Reads no tensor data.
     pub fn open(path: impl AsRef<Path>) -> Result<Checkpoint> {
-        let path = path.as_ref().to_path_buf();
+        let path = folder::weights_file(path.as_ref())?;
         let kind = sniff(&path)?;
         let mut nested_under = None;
         let (store, shapes) = match kind {
@@ -590,6 +676,8 @@ impl Checkpoint {
             return Err(Error::bad_file(&path, "the file holds no tensors"));
         }
         let (layout, other_prefixes) = detect_layout(&path, &shapes)?;
+        let family = Family::detect(&layout.prefix, &mut shapes.keys());
+        let beside = folder::read_beside(&path)?;
         Ok(Checkpoint {
             path,
             store,
@@ -597,6 +685,8 @@ impl Checkpoint {
             nested_under,
             layout,
             other_prefixes,
+            family,
+            beside,
             used: RefCell::new(BTreeSet::new()),
         })
     }
@@ -845,6 +935,15 @@ impl Checkpoint {
 
     /// Read the model shape off the tensors; `over` fields win.
     pub fn infer_config(&self, over: &ConfigOverride) -> Result<Config> {
+        // A config.json beside the file sits between the tensors and the user's --config.
+        let merged;
+        let over = match &self.beside {
+            Some(b) => {
+                merged = over.over(&b.over);
+                &merged
+            }
+            None => over,
+        };
         let bad = |m: String| Error::bad_file(&self.path, m);
         let proj = self
             .shape(&Part::embed("proj.weight"))
@@ -873,24 +972,39 @@ impl Checkpoint {
         };
         let mut heads = Vec::new();
         let mut window: Option<(usize, usize)> = None;
+        // V1 reads heads (and the window) off the bias tables, V2 the heads off the logit scales.
+        let (heads_part, heads_what) = match self.family {
+            Family::V1 => ("attn.relative_position_bias_table", "a bias table"),
+            Family::V2 => ("attn.logit_scale", "a logit scale"),
+        };
         for (i, &depth) in depths.iter().enumerate() {
             // The first block of the stage whose table is in the file (a hole elsewhere is
             // named by the loader's list of missing tensors).
             let found = (0..depth)
-                .map(|j| Part::block(i, j, "attn.relative_position_bias_table"))
+                .map(|j| Part::block(i, j, heads_part))
                 .find_map(|part| self.shape(&part).map(|t| (part, t)));
             let Some((part, t)) = found else {
                 if over.heads.is_some() {
                     heads.push(0);
                     continue;
                 }
-                let part = Part::block(i, 0, "attn.relative_position_bias_table");
+                let part = Part::block(i, 0, heads_part);
                 return Err(bad(format!(
-                    "missing tensor {} (no block of stage {i} has a bias table, so its heads \
+                    "missing tensor {} (no block of stage {i} has {heads_what}, so its heads \
                      cannot be read)",
                     self.file_names(&part).join("")
                 )));
             };
+            if self.family == Family::V2 {
+                if t.len() != 3 || t[1] != 1 || t[2] != 1 {
+                    return Err(bad(format!(
+                        "logit scale {} has shape {t:?}; expected [heads, 1, 1]",
+                        self.file_names(&part).join("")
+                    )));
+                }
+                heads.push(t[0]);
+                continue;
+            }
             if t.len() != 2 {
                 return Err(bad(format!(
                     "bias table {} has shape {t:?}; expected [rows, heads]",
@@ -912,16 +1026,32 @@ impl Checkpoint {
                 ))
             })?;
         let mlp_ratio = fc1.first().copied().unwrap_or(0) as f64 / embed_dim.max(1) as f64;
-        let window =
-            match (over.window, window) {
-                (Some(w), _) => w.dims(),
-                (None, Some(w)) => w,
-                (None, None) => return Err(bad(
-                    "no stage has a square window ((2M-1)^2 bias table rows), so the window size \
-                     cannot be read from the tensors; give it in a config file (\"window\": M)"
+        if self.family == Family::V2 {
+            window = self.v2_buffer_window(&depths);
+        }
+        let window = match (over.window, window) {
+            (Some(w), _) => w.dims(),
+            (None, Some(w)) => w,
+            (None, None) if self.family == Family::V2 => {
+                return Err(Error::WindowUnstated {
+                    path: self.path.clone(),
+                    problem: "a Swin V2 checkpoint does not record its window in its tensors \
+                              (the position bias is made by an MLP for any window); put the \
+                              transformers config.json beside the file, or give the window in \
+                              a --config file (\"window\": M)"
                         .into(),
-                )),
-            };
+                });
+            }
+            (None, None) => {
+                return Err(bad(
+                    "no stage has a square window ((2M-1)^2 bias table rows), so the window \
+                     size cannot be read from the tensors; give it in a config file \
+                     (\"window\": M)"
+                        .into(),
+                ))
+            }
+        };
+        let depths_len = over.depths.as_ref().map_or(depths.len(), Vec::len);
         let cfg = Config {
             in_chans,
             patch: over.patch.unwrap_or(patch),
@@ -930,6 +1060,7 @@ impl Checkpoint {
             heads: over.heads.clone().unwrap_or(heads),
             window,
             mlp_ratio: over.mlp_ratio.unwrap_or(mlp_ratio),
+            v2: (self.family == Family::V2).then(|| self.v2_shape(over, depths_len)),
         };
         cfg.validate().map_err(|m| {
             bad(format!(
@@ -938,6 +1069,54 @@ impl Checkpoint {
             ))
         })?;
         Ok(cfg)
+    }
+
+    /// The window of a V2 file that kept its coordinate tables (`relative_coords_table`
+    /// `[1, 2wh-1, 2ww-1, 2]`, saved by older code): the largest over its blocks.
+    fn v2_buffer_window(&self, depths: &[usize]) -> Option<(usize, usize)> {
+        depths
+            .iter()
+            .enumerate()
+            .flat_map(|(i, &d)| {
+                (0..d).map(move |j| Part::block(i, j, "attn.relative_coords_table"))
+            })
+            .filter_map(|p| self.shape(&p))
+            .filter(|t| t.len() == 4 && t[1] % 2 == 1 && t[2] % 2 == 1)
+            .map(|t| (t[1].div_ceil(2), t[2].div_ceil(2)))
+            .max()
+    }
+
+    /// What a V2 backbone adds to the shape: the bias MLP's width read off the tensors (512, the
+    /// width both reference libraries build, when no block has it: the loader then names the
+    /// missing tensors), the trained windows and the size it was built for from the override or
+    /// config.json, and the library's mask and norm eps.
+    fn v2_shape(&self, over: &ConfigOverride, stages: usize) -> V2Shape {
+        let cpb_hidden = self
+            .shapes
+            .keys()
+            .filter(|n| n.starts_with(&self.layout.prefix))
+            .find_map(|n| {
+                let hit = n.ends_with("cpb_mlp.0.weight")
+                    || n.ends_with("continuous_position_bias_mlp.0.weight");
+                let s = &self.shapes[n].0;
+                (hit && s.len() == 2 && s[1] == 2).then_some(s[0])
+            })
+            .unwrap_or(512);
+        let transformers = self.layout.kind.is_transformers();
+        V2Shape {
+            cpb_hidden,
+            trained_windows: over
+                .trained_window
+                .as_ref()
+                .map_or_else(|| vec![None; stages], |t| t.per_stage(stages)),
+            built_for: over.built_for.map(|w| w.dims()),
+            mask_fill: if transformers { -200.0 } else { -100.0 },
+            norm_eps: self
+                .beside
+                .as_ref()
+                .and_then(|b| b.layer_norm_eps)
+                .unwrap_or(1e-5), // the reference libraries' default
+        }
     }
 
     /// The tensors used so far (file names).
@@ -990,7 +1169,10 @@ fn is_stage_norm(name: &str) -> bool {
 /// Why a tensor in the file was not used.
 pub fn ignored_reason(name: &str) -> &'static str {
     let any = |parts: &[&str]| parts.iter().any(|p| name.contains(p));
-    if name.ends_with("relative_position_index") || name.ends_with("attn_mask") {
+    if name.ends_with("relative_position_index")
+        || name.ends_with("attn_mask")
+        || name.ends_with("relative_coords_table")
+    {
         "buffer, recomputed"
     } else if any(&["decode_head.", "auxiliary_head."]) {
         "segmentation head"

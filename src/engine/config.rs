@@ -24,6 +24,37 @@ pub struct Config {
     pub window: (usize, usize),
     /// MLP hidden width over the block width.
     pub mlp_ratio: f64,
+    /// What a Swin V2 backbone adds; `None` for the first version.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub v2: Option<V2Shape>,
+}
+
+/// The second version of the family (Liu et al. 2022, "Swin Transformer V2"): scaled cosine
+/// attention, a continuous position bias made by a small MLP, q and v biases without a k bias,
+/// norms after attention and MLP instead of before, patch merging that reduces, then normalises.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct V2Shape {
+    /// Hidden width of the position bias MLP (`Linear(2, hidden)`, ReLU, `Linear(hidden, heads)`).
+    pub cpb_hidden: usize,
+    /// Per stage, the window the checkpoint was trained with, when the bias coordinates are
+    /// normalised by it rather than by the block's own window; `None`: the block's own window.
+    pub trained_windows: Vec<Option<(usize, usize)>>,
+    /// The image size (height, width) the model was built for; transformers fixes each
+    /// stage's window from it ([`crate::engine::geometry::SmallStage::AsBuilt`]).
+    pub built_for: Option<(usize, usize)>,
+    /// The shift mask across regions: -100, or -200 where the library adds its mask twice
+    /// (transformers' Swinv2).
+    pub mask_fill: f32,
+    /// LayerNorm eps of the blocks and the final norm (transformers' `layer_norm_eps`; the
+    /// patch embedding and merging norms keep 1e-5).
+    pub norm_eps: f32,
+}
+
+impl V2Shape {
+    /// The trained window of stage `i`, if the checkpoint names one.
+    pub fn trained_window(&self, i: usize) -> Option<(usize, usize)> {
+        self.trained_windows.get(i).copied().flatten()
+    }
 }
 
 /// Fields of an explicit configuration file; any field left out is read from the tensors.
@@ -39,6 +70,54 @@ pub struct ConfigOverride {
     pub mlp_ratio: Option<f64>,
     pub pad_order: Option<crate::engine::geometry::PadOrder>,
     pub small_stage: Option<crate::engine::geometry::SmallStage>,
+    /// Swin V2: the window the checkpoint was trained with (one number for every stage, or one
+    /// per stage, 0 for none), which normalises the position bias coordinates.
+    pub trained_window: Option<TrainedWindow>,
+    /// Swin V2 from transformers: the image size the model was built for (`N` or `[H, W]`).
+    pub built_for: Option<WindowSpec>,
+}
+
+impl ConfigOverride {
+    /// Every field of `self`, and where `self` leaves one out, `beneath`'s.
+    pub fn over(&self, beneath: &ConfigOverride) -> ConfigOverride {
+        ConfigOverride {
+            patch: self.patch.or(beneath.patch),
+            embed_dim: self.embed_dim.or(beneath.embed_dim),
+            depths: self.depths.clone().or_else(|| beneath.depths.clone()),
+            heads: self.heads.clone().or_else(|| beneath.heads.clone()),
+            window: self.window.or(beneath.window),
+            mlp_ratio: self.mlp_ratio.or(beneath.mlp_ratio),
+            pad_order: self.pad_order.or(beneath.pad_order),
+            small_stage: self.small_stage.or(beneath.small_stage),
+            trained_window: self
+                .trained_window
+                .clone()
+                .or_else(|| beneath.trained_window.clone()),
+            built_for: self.built_for.or(beneath.built_for),
+        }
+    }
+}
+
+/// One trained window for every stage, or one per stage (0: the block's own window).
+#[derive(Clone, Debug, Deserialize)]
+#[serde(untagged)]
+pub enum TrainedWindow {
+    All(usize),
+    PerStage(Vec<usize>),
+}
+
+impl TrainedWindow {
+    /// Per stage, for `stages` stages; `None` where the entry is 0 (a list shorter than the
+    /// stages leaves the rest at 0).
+    pub fn per_stage(&self, stages: usize) -> Vec<Option<(usize, usize)>> {
+        let at = |i: usize| match self {
+            TrainedWindow::All(m) => *m,
+            TrainedWindow::PerStage(v) => v.get(i).copied().unwrap_or(0),
+        };
+        (0..stages)
+            .map(|i| Some(at(i)).filter(|&m| m > 0).map(|m| (m, m)))
+            .collect()
+    }
 }
 
 #[derive(Clone, Copy, Debug, Deserialize)]
@@ -102,6 +181,7 @@ impl Config {
             heads: heads.to_vec(),
             window: (7, 7),
             mlp_ratio: 4.0,
+            v2: None,
         })
     }
 
@@ -145,6 +225,7 @@ impl Config {
             patch: self.patch,
             depths: self.depths.clone(),
             window: self.window,
+            built_for: self.v2.as_ref().and_then(|v| v.built_for),
         }
     }
 
@@ -162,11 +243,25 @@ impl Config {
             let h = self.mlp_hidden(i) as u64;
             if i > 0 {
                 let cin = self.dim(i - 1) as u64;
-                n += 2 * 4 * cin + 4 * cin * c;
+                // The norm is over 4C before the reduction, over 2C after it in V2.
+                let norm = if self.v2.is_some() {
+                    2 * c
+                } else {
+                    2 * 4 * cin
+                };
+                n += norm + 4 * cin * c;
             }
+            let heads = self.heads[i] as u64;
+            let position = match &self.v2 {
+                // logit scales, q and v biases (no k bias), the bias MLP
+                Some(v) => {
+                    let hid = v.cpb_hidden as u64;
+                    heads + 2 * c + 3 * hid + hid * heads
+                }
+                None => 3 * c + table * heads,
+            };
             let block = 2 * c // norm1
-                + 3 * c * c + 3 * c // qkv
-                + table * self.heads[i] as u64
+                + 3 * c * c + position // qkv, its biases and the position bias
                 + c * c + c // proj
                 + 2 * c // norm2
                 + c * h + h + h * c + c; // mlp

@@ -35,6 +35,11 @@ pub enum SmallStage {
     PadUp,
     /// Per axis: a side <= the window gets window = side and no shift on that axis (timm).
     ClampPerAxis,
+    /// Windows fixed when the model was built, from the image size it was built for
+    /// ([`ModelShape::built_for`]; transformers' Swinv2): a stage whose grid at that size is not
+    /// larger than the window along the rows gets that grid side as a square window and no
+    /// shift, whatever the input; every stage is then padded up to its window.
+    AsBuilt,
 }
 
 impl PadOrder {
@@ -52,6 +57,7 @@ impl SmallStage {
             SmallStage::Clamp => "clamp",
             SmallStage::PadUp => "pad-up",
             SmallStage::ClampPerAxis => "clamp-per-axis",
+            SmallStage::AsBuilt => "as-built",
         }
     }
 }
@@ -272,6 +278,12 @@ impl BlockGeometry {
     /// The additive shift mask `[n_windows, N, N]`: 0 within a region, -100 across regions
     /// (the published value). `None` for unshifted blocks, which use no mask.
     pub fn shift_mask(&self) -> Option<Vec<f32>> {
+        self.shift_mask_with(-100.0)
+    }
+
+    /// [`Self::shift_mask`] with `fill` across regions (transformers' Swinv2 adds its -100 mask
+    /// twice, so its blocks see -200).
+    pub fn shift_mask_with(&self, fill: f32) -> Option<Vec<f32>> {
         if !self.is_shifted() {
             return None;
         }
@@ -280,7 +292,7 @@ impl BlockGeometry {
         let mut out = Vec::with_capacity(ids.len() * n);
         for win in ids.chunks(n) {
             for &a in win {
-                out.extend(win.iter().map(|&b| if a == b { 0.0 } else { -100.0 }));
+                out.extend(win.iter().map(|&b| if a == b { 0.0 } else { fill }));
             }
         }
         Some(out)
@@ -372,6 +384,9 @@ pub struct ModelShape {
     pub depths: Vec<usize>,
     /// Nominal window (rows, cols).
     pub window: (usize, usize),
+    /// The image size (height, width) the model was built for, where its windows were fixed
+    /// then ([`SmallStage::AsBuilt`]); `None`: as if built for the input it runs on.
+    pub built_for: Option<(usize, usize)>,
 }
 
 /// The whole partition of one forward pass at one input size.
@@ -386,15 +401,28 @@ pub struct Geometry {
     pub stages: Vec<StageGeometry>,
 }
 
-/// Window and shift of one axis of a stage under a small-stage policy (before the even/odd rule).
+/// Window and shift of stage `index` under a small-stage policy (before the even/odd rule);
+/// `built_grid` is the patch grid of the size the model was built for ([`SmallStage::AsBuilt`]).
 fn stage_window(
     grid: (usize, usize),
     nominal: (usize, usize),
     policy: SmallStage,
+    index: usize,
+    built_grid: (usize, usize),
 ) -> ((usize, usize), (usize, usize)) {
     let full_shift = (nominal.0 / 2, nominal.1 / 2);
     match policy {
         SmallStage::PadUp => (nominal, full_shift),
+        SmallStage::AsBuilt => {
+            // transformers: the construction grid halves with floor division, and the row
+            // side alone decides the (square) window.
+            let side = (built_grid.0 >> index).max(1);
+            if side <= nominal.0 {
+                ((side, side), (0, 0))
+            } else {
+                ((nominal.0, nominal.0), (full_shift.0, full_shift.0))
+            }
+        }
         SmallStage::Clamp => {
             let m = grid.0.min(grid.1);
             if m <= nominal.0.min(nominal.1) {
@@ -419,12 +447,15 @@ impl Geometry {
         let p = shape.patch;
         let mut grid = (image.0.div_ceil(p), image.1.div_ceil(p));
         let input_padded = (grid.0 * p, grid.1 * p);
+        let built = shape.built_for.unwrap_or(image);
+        let built_grid = (built.0 / p, built.1 / p);
         let mut stages = Vec::with_capacity(shape.depths.len());
         for (index, &depth) in shape.depths.iter().enumerate() {
             if index > 0 {
                 grid = (grid.0.div_ceil(2), grid.1.div_ceil(2));
             }
-            let (window, shift) = stage_window(grid, shape.window, semantics.small_stage);
+            let (window, shift) =
+                stage_window(grid, shape.window, semantics.small_stage, index, built_grid);
             let blocks = (0..depth)
                 .map(|j| {
                     let s = if j % 2 == 1 { shift } else { (0, 0) };
@@ -483,6 +514,7 @@ mod tests {
             patch: 4,
             depths: vec![2, 2, 6, 2],
             window: (window, window),
+            built_for: None,
         }
     }
 
@@ -576,6 +608,46 @@ mod tests {
         assert_eq!(
             (b.window(), b.shift(), b.padded()),
             ((7, 7), (3, 3), (7, 7))
+        );
+    }
+
+    // transformers 5.23.0 Swinv2Backbone built for image_size 64 (window 8, patch 4) and run on
+    // 101x77 (tests/fixtures/tfv2_backbone_odd, read off the library's layers): construction
+    // grids 16, 8, 4, 2 give windows 8 (shift 4), 8 (no shift), 4 and 2; every stage is padded
+    // up to its window.
+    #[test]
+    fn as_built_windows_come_from_the_built_size() {
+        let shape = ModelShape {
+            patch: 4,
+            depths: vec![2, 2, 2, 2],
+            window: (8, 8),
+            built_for: Some((64, 64)),
+        };
+        let g = Geometry::new(
+            (77, 101),
+            &shape,
+            sem(PadOrder::PadThenShift, SmallStage::AsBuilt),
+        );
+        let got: Vec<_> = g
+            .stages
+            .iter()
+            .map(|s| {
+                (
+                    s.grid,
+                    s.blocks[1].window(),
+                    s.blocks[1].shift(),
+                    s.padded(),
+                )
+            })
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ((20, 26), (8, 8), (4, 4), (24, 32)),
+                ((10, 13), (8, 8), (0, 0), (16, 16)),
+                ((5, 7), (4, 4), (0, 0), (8, 8)),
+                ((3, 4), (2, 2), (0, 0), (4, 4)),
+            ]
         );
     }
 

@@ -237,6 +237,66 @@ pub fn concat_layer_norm(
         });
 }
 
+/// Rows of `x` (`[tokens, c]`) picked by `index` into `out` (`[index.len(), c]`); an index
+/// equal to `tokens` is the zero padding token (V2 blocks attend on the raw rows, and V2 patch
+/// merging normalises after its reduction).
+pub fn gather_rows(x: &[f32], c: usize, index: &[u32], out: &mut [f32]) {
+    let tokens = x.len() / c;
+    assert_eq!(out.len(), index.len() * c, "output rows");
+    out.par_chunks_mut(ROWS_PER_TASK * c)
+        .zip(index.par_chunks(ROWS_PER_TASK))
+        .for_each(|(o, idx)| {
+            for (orow, &i) in o.chunks_exact_mut(c).zip(idx) {
+                let i = i as usize;
+                if i >= tokens {
+                    orow.fill(0.0);
+                } else {
+                    orow.copy_from_slice(&x[i * c..(i + 1) * c]);
+                }
+            }
+        });
+}
+
+/// `x += y`, element by element.
+pub fn add_assign(x: &mut [f32], y: &[f32]) {
+    assert_eq!(x.len(), y.len(), "rows");
+    x.par_chunks_mut(16 * 1024)
+        .zip(y.par_chunks(16 * 1024))
+        .for_each(|(a, b)| {
+            simd(|| {
+                for (a, &b) in a.iter_mut().zip(b) {
+                    *a += b;
+                }
+            })
+        });
+}
+
+/// Scaled cosine attention on the qkv rows (`[windows * n, 3C]`): every head's q and k are
+/// divided by their L2 norm (at least 1e-12, as the reference libraries' `normalize`) and the
+/// q rows multiplied by the head's scale, so that [`window_attention`]'s `q k^T` is
+/// `scale * cos(q, k)`.
+pub fn cosine_qk(qkv: &mut [f32], s: AttentionShape, scales: &[f32]) {
+    let c = s.heads * s.head_dim;
+    assert_eq!(qkv.len(), s.windows * s.n * 3 * c, "qkv rows");
+    assert_eq!(scales.len(), s.heads, "scales");
+    let d = s.head_dim;
+    qkv.par_chunks_mut(ROWS_PER_TASK * 3 * c).for_each(|rows| {
+        simd(|| {
+            for row in rows.chunks_exact_mut(3 * c) {
+                for (h, &scale) in scales.iter().enumerate() {
+                    for (part, factor) in [(0, scale), (1, 1.0)] {
+                        let v = &mut row[part * c + h * d..part * c + (h + 1) * d];
+                        let norm = sum_lanes(v.iter().map(|&a| a * a)).sqrt().max(1e-12);
+                        for a in v.iter_mut() {
+                            *a = *a / norm * factor;
+                        }
+                    }
+                }
+            }
+        })
+    });
+}
+
 /// LayerNorm of every row of `x` (`[rows, c]`) into `out`.
 pub fn layer_norm(x: &[f32], c: usize, weight: &[f32], bias: &[f32], eps: f32, out: &mut [f32]) {
     assert_eq!(x.len(), out.len(), "output rows");
@@ -620,6 +680,50 @@ mod tests {
             return f32::from_bits(1) as f64;
         }
         (f32::from_bits(v.to_bits() + 1) - v) as f64
+    }
+
+    /// The cosine step against the composed tensor operations (`x / max(||x||, 1e-12)` per
+    /// head, q times its scale), with a zero k row (a padding token: no k bias) kept at zero.
+    #[test]
+    fn cosine_qk_matches_composed_normalisation() {
+        let s = AttentionShape {
+            windows: 3,
+            n: 4,
+            heads: 2,
+            head_dim: 5,
+        };
+        let c = 10;
+        let mut qkv = randn(s.windows * s.n * 3 * c, 41);
+        qkv[c..2 * c].fill(0.0); // row 0's k
+        let scales = [3.5f32, 100.0];
+        let t = Tensor::from_vec(qkv.clone(), (s.windows * s.n, 3, 2, 5), &Device::Cpu).unwrap();
+        let unit = |x: Tensor| {
+            let n = x
+                .sqr()
+                .unwrap()
+                .sum_keepdim(D::Minus1)
+                .unwrap()
+                .sqrt()
+                .unwrap()
+                .clamp(1e-12, f32::MAX)
+                .unwrap();
+            x.broadcast_div(&n).unwrap()
+        };
+        let sc = Tensor::from_vec(scales.to_vec(), (1, 2, 1), &Device::Cpu).unwrap();
+        let q = unit(t.narrow(1, 0, 1).unwrap().squeeze(1).unwrap())
+            .broadcast_mul(&sc)
+            .unwrap();
+        let k = unit(t.narrow(1, 1, 1).unwrap().squeeze(1).unwrap());
+        let v = t.narrow(1, 2, 1).unwrap().squeeze(1).unwrap();
+        let want: Vec<f32> = Tensor::stack(&[q, k, v], 1)
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        cosine_qk(&mut qkv, s, &scales);
+        assert!(max_rel(&qkv, &want) < 1e-6);
+        assert!(qkv[c..2 * c].iter().all(|&v| v == 0.0));
     }
 
     /// erf against f64 `erf` of the C library at 200 001 points over [-6, 6] and near zero.

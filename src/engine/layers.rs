@@ -7,6 +7,7 @@
 //! matmuls run over all windows and heads at once and no Rust loop touches a window.
 
 use super::checkpoint::Part;
+use super::config::V2Shape;
 use super::kernels::{self, AttentionShape};
 use crate::engine::geometry::BlockGeometry;
 use crate::error::{Error, Result};
@@ -27,13 +28,24 @@ pub trait WeightSource {
 pub struct LayerNorm {
     weight: Tensor,
     bias: Tensor,
+    eps: f32,
 }
 
 impl LayerNorm {
     pub fn new(src: &dyn WeightSource, dim: usize, part: impl Fn(&str) -> Part) -> Result<Self> {
+        Self::with_eps(src, dim, part, LN_EPS)
+    }
+
+    pub fn with_eps(
+        src: &dyn WeightSource,
+        dim: usize,
+        part: impl Fn(&str) -> Part,
+        eps: f32,
+    ) -> Result<Self> {
         Ok(LayerNorm {
             weight: src.get(part("weight"), &[dim])?,
             bias: src.get(part("bias"), &[dim])?,
+            eps,
         })
     }
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
@@ -43,14 +55,14 @@ impl LayerNorm {
                 x,
                 &self.weight,
                 &self.bias,
-                LN_EPS,
+                self.eps,
             )?);
         }
         Ok(candle_nn::ops::layer_norm(
             &x.contiguous()?,
             &self.weight,
             &self.bias,
-            LN_EPS,
+            self.eps,
         )?)
     }
 }
@@ -65,7 +77,7 @@ impl LayerNorm {
     fn gather_rows(&self, x: &[f32], c: usize, index: &[u32], out: &mut [f32]) -> Result<()> {
         with_f32(&self.weight, |w| {
             with_f32(&self.bias, |b| {
-                kernels::gather_layer_norm(x, c, index, w, b, LN_EPS, out);
+                kernels::gather_layer_norm(x, c, index, w, b, self.eps, out);
                 Ok(())
             })
         })
@@ -74,7 +86,7 @@ impl LayerNorm {
     fn rows(&self, x: &[f32], c: usize, out: &mut [f32]) -> Result<()> {
         with_f32(&self.weight, |w| {
             with_f32(&self.bias, |b| {
-                kernels::layer_norm(x, c, w, b, LN_EPS, out);
+                kernels::layer_norm(x, c, w, b, self.eps, out);
                 Ok(())
             })
         })
@@ -274,17 +286,7 @@ impl BiasTable {
     pub fn bias(&self, wh: usize, ww: usize) -> Result<Tensor> {
         let (th, tw) = self.window_for((wh, ww))?;
         let n = wh * ww;
-        let mut idx = Vec::with_capacity(n * n);
-        for a in 0..n {
-            let (ya, xa) = (a / ww, a % ww);
-            for b in 0..n {
-                let (yb, xb) = (b / ww, b % ww);
-                let dy = ya + th - 1 - yb;
-                let dx = xa + tw - 1 - xb;
-                idx.push((dy * (2 * tw - 1) + dx) as u32);
-            }
-        }
-        let idx = Tensor::from_vec(idx, n * n, &Device::Cpu)?;
+        let idx = Tensor::from_vec(relative_index(wh, ww, (th, tw)), n * n, &Device::Cpu)?;
         let heads = self.table.dim(1)?;
         Ok(self
             .table
@@ -295,13 +297,148 @@ impl BiasTable {
     }
 }
 
+/// For every pair (a, b) of positions in a `wh x ww` window (row-major), the row of a relative
+/// position table made for a `th x tw` window: `(ya - yb + th - 1) * (2tw - 1) + (xa - xb + tw
+/// - 1)`, the published relative position index.
+fn relative_index(wh: usize, ww: usize, (th, tw): (usize, usize)) -> Vec<u32> {
+    let n = wh * ww;
+    let mut idx = Vec::with_capacity(n * n);
+    for a in 0..n {
+        let (ya, xa) = (a / ww, a % ww);
+        for b in 0..n {
+            let (yb, xb) = (b / ww, b % ww);
+            let dy = ya + th - 1 - yb;
+            let dx = xa + tw - 1 - xb;
+            idx.push((dy * (2 * tw - 1) + dx) as u32);
+        }
+    }
+    idx
+}
+
+/// Swin V2's continuous position bias: an MLP (`Linear(2, hidden)`, ReLU, `Linear(hidden,
+/// heads)` without bias) over log-spaced relative coordinates, then `16 sigmoid`. It serves any
+/// window; the coordinates are divided by (window - 1) of the trained window when the
+/// checkpoint names one, else of the block's own window.
+pub struct ContinuousBias {
+    /// `[hidden, 2]`, `[hidden]` and `[heads, hidden]`, row-major.
+    w1: Vec<f32>,
+    b1: Vec<f32>,
+    w2: Vec<f32>,
+    hidden: usize,
+    heads: usize,
+    trained: Option<(usize, usize)>,
+}
+
+impl ContinuousBias {
+    fn new(
+        src: &dyn WeightSource,
+        heads: usize,
+        hidden: usize,
+        trained: Option<(usize, usize)>,
+        part: impl Fn(&str) -> Part,
+    ) -> Result<Self> {
+        let flat = |t: Tensor| -> Result<Vec<f32>> { Ok(t.flatten_all()?.to_vec1()?) };
+        Ok(ContinuousBias {
+            w1: flat(src.get(part("0.weight"), &[hidden, 2])?)?,
+            b1: flat(src.get(part("0.bias"), &[hidden])?)?,
+            w2: flat(src.get(part("2.weight"), &[heads, hidden])?)?,
+            hidden,
+            heads,
+            trained,
+        })
+    }
+
+    /// The window the coordinates are normalised by, for a block running `window`.
+    pub fn normalised_by(&self, window: (usize, usize)) -> (usize, usize) {
+        self.trained.unwrap_or(window)
+    }
+
+    /// `16 sigmoid(mlp(coords))` for every relative offset of a `wh x ww` window:
+    /// `[(2wh-1)(2ww-1), heads]`, rows ordered like a bias table. The coordinate formula is the
+    /// reference libraries': `t = 8 d / max(M - 1, 1)`, `sign(t) log2(|t| + 1) / log2(8)`.
+    fn table(&self, wh: usize, ww: usize) -> Vec<f32> {
+        let (mh, mw) = self.normalised_by((wh, ww));
+        let coord = |d: isize, m: usize| -> f32 {
+            let t = d as f32 / m.saturating_sub(1).max(1) as f32 * 8.0;
+            t.signum() * (t.abs() + 1.0).log2() / 3.0
+        };
+        let (rh, rw) = (2 * wh - 1, 2 * ww - 1);
+        let mut out = Vec::with_capacity(rh * rw * self.heads);
+        let mut hidden = vec![0f32; self.hidden];
+        for dy in 0..rh {
+            let y = coord(dy as isize - (wh as isize - 1), mh);
+            for dx in 0..rw {
+                let x = coord(dx as isize - (ww as isize - 1), mw);
+                for (j, h) in hidden.iter_mut().enumerate() {
+                    let v = self.w1[2 * j] * y + self.w1[2 * j + 1] * x + self.b1[j];
+                    *h = v.max(0.0);
+                }
+                for head in 0..self.heads {
+                    let row = &self.w2[head * self.hidden..(head + 1) * self.hidden];
+                    let z: f64 = row
+                        .iter()
+                        .zip(&hidden)
+                        .map(|(&w, &h)| w as f64 * h as f64)
+                        .sum();
+                    out.push(16.0 / (1.0 + (-(z as f32)).exp()));
+                }
+            }
+        }
+        out
+    }
+}
+
+/// Where a block's relative position bias comes from.
+pub enum PositionBias {
+    /// A learnt table (the first version).
+    Table(BiasTable),
+    /// Made by an MLP for any window (V2).
+    Continuous(ContinuousBias),
+}
+
+impl PositionBias {
+    /// Whether the bias can serve a runtime window (a table only serves windows it covers).
+    pub fn check(&self, window: (usize, usize)) -> Result<()> {
+        match self {
+            PositionBias::Table(t) => t.window_for(window).map(|_| ()),
+            PositionBias::Continuous(_) => Ok(()),
+        }
+    }
+
+    /// The window a table was made for; `None` for the continuous bias.
+    pub fn made_for(&self) -> Option<(usize, usize)> {
+        match self {
+            PositionBias::Table(t) => Some(t.made_for()),
+            PositionBias::Continuous(_) => None,
+        }
+    }
+
+    /// Bias `[heads, N, N]` for a runtime window `wh x ww`.
+    pub fn bias(&self, wh: usize, ww: usize) -> Result<Tensor> {
+        match self {
+            PositionBias::Table(t) => t.bias(wh, ww),
+            PositionBias::Continuous(c) => {
+                let rows = (2 * wh - 1) * (2 * ww - 1);
+                let table = Tensor::from_vec(c.table(wh, ww), (rows, c.heads), &Device::Cpu)?;
+                BiasTable::new(table, (wh, ww), "the continuous position bias")?.bias(wh, ww)
+            }
+        }
+    }
+}
+
 pub struct WindowAttention {
     heads: usize,
     qkv: Linear,
-    /// The q rows of `qkv` carry the `head_dim^-1/2` scale (folded in at load for inference).
+    /// The q rows of `qkv` carry the `head_dim^-1/2` scale (folded in at load for inference;
+    /// always true for cosine attention, which has no such scale).
     q_scaled: bool,
     proj: Linear,
-    pub bias_table: BiasTable,
+    pub bias: PositionBias,
+    /// Cosine attention (V2): per head, `exp(min(logit_scale, ln 100))`, which multiplies the
+    /// cosine of the angle between q and k.
+    cosine: Option<Vec<f32>>,
+    /// The shift mask's value across regions.
+    mask_fill: f32,
     /// The last geometry this block ran with, and what the kernels need for it.
     plan: Mutex<Option<Arc<Plan>>>,
 }
@@ -331,15 +468,24 @@ fn u32_tensor(v: Vec<u32>) -> Result<Tensor> {
 
 impl WindowAttention {
     /// The qkv projection and its q scale: folded into the q rows of the weight and bias for
-    /// inference, kept apart for trainable weights.
+    /// inference, kept apart for trainable weights. Cosine attention (V2) has no q scale; its
+    /// bias is the q bias, zeros for k and the v bias.
     fn new(
         src: &dyn WeightSource,
         dim: usize,
         heads: usize,
+        cosine: bool,
         part: impl Fn(&str) -> Part,
     ) -> Result<(Linear, bool)> {
-        let w = src.get(part("weight"), &[3 * dim, dim])?;
-        let b = src.get(part("bias"), &[3 * dim])?;
+        let w = src.get(part("qkv.weight"), &[3 * dim, dim])?;
+        if cosine {
+            let q = src.get(part("q_bias"), &[dim])?;
+            let v = src.get(part("v_bias"), &[dim])?;
+            let b = Tensor::cat(&[&q, &q.zeros_like()?, &v], 0)?;
+            let frozen = !(w.track_op() || b.track_op());
+            return Ok((Linear::from_weight(&w, Some(b))?, frozen));
+        }
+        let b = src.get(part("qkv.bias"), &[3 * dim])?;
         if w.track_op() || b.track_op() {
             return Ok((Linear::from_weight(&w, Some(b))?, false));
         }
@@ -368,8 +514,8 @@ impl WindowAttention {
             geometry: *geo,
             gather: geo.gather_index(),
             scatter: geo.scatter_index(),
-            mask: geo.shift_mask(),
-            bias: self.bias_table.bias(wh, ww)?.flatten_all()?.to_vec1()?,
+            mask: geo.shift_mask_with(self.mask_fill),
+            bias: self.bias.bias(wh, ww)?.flatten_all()?.to_vec1()?,
         });
         *cached = Some(plan.clone());
         Ok(plan)
@@ -399,17 +545,28 @@ impl WindowAttention {
             .reshape((n_windows, n, 3, heads, head_dim))?
             .permute((2, 0, 3, 1, 4))?
             .contiguous()?;
-        let q = if self.q_scaled {
-            qkv.get(0)?
-        } else {
-            (qkv.get(0)? * (head_dim as f64).powf(-0.5))?
-        };
         let k = qkv.get(1)?;
         let v = qkv.get(2)?;
-
-        let mut attn = q.matmul(&k.t()?)?; // [windows, heads, N, N]
-        attn = attn.broadcast_add(&self.bias_table.bias(wh, ww)?.unsqueeze(0)?)?;
-        if let Some(mask) = geo.shift_mask() {
+        let mut attn = match &self.cosine {
+            Some(scales) => {
+                let unit = |t: Tensor| -> Result<Tensor> {
+                    let norm = t
+                        .sqr()?
+                        .sum_keepdim(D::Minus1)?
+                        .sqrt()?
+                        .clamp(1e-12, f32::MAX)?;
+                    Ok(t.broadcast_div(&norm)?)
+                };
+                let scales = Tensor::from_vec(scales.clone(), (1, heads, 1, 1), &Device::Cpu)?;
+                unit(qkv.get(0)?)?
+                    .matmul(&unit(k)?.t()?)?
+                    .broadcast_mul(&scales)?
+            }
+            None if self.q_scaled => qkv.get(0)?.matmul(&k.t()?)?,
+            None => (qkv.get(0)? * (head_dim as f64).powf(-0.5))?.matmul(&k.t()?)?,
+        }; // [windows, heads, N, N]
+        attn = attn.broadcast_add(&self.bias.bias(wh, ww)?.unsqueeze(0)?)?;
+        if let Some(mask) = geo.shift_mask_with(self.mask_fill) {
             let mask = Tensor::from_vec(mask, (n_windows, 1, n, n), &Device::Cpu)?;
             attn = attn.broadcast_add(&mask)?;
         }
@@ -446,10 +603,37 @@ pub struct Block {
     pub attn: WindowAttention,
     norm2: LayerNorm,
     mlp: Mlp,
+    /// V2's residual post-norm: `x + norm1(attn(x))`, `x + norm2(mlp(x))` instead of
+    /// `x + attn(norm1(x))`, `x + mlp(norm2(x))`.
+    post_norm: bool,
+}
+
+/// The V2 weights of one block's attention: the logit scales, clamped at ln 100 and
+/// exponentiated, and the bias MLP.
+fn v2_attention(
+    src: &dyn WeightSource,
+    heads: usize,
+    v2: &V2Shape,
+    stage: usize,
+    part: impl Fn(&str) -> Part,
+) -> Result<(Vec<f32>, ContinuousBias)> {
+    let max = 100f64.ln() as f32;
+    let scales: Vec<f32> = src
+        .get(part("logit_scale"), &[heads, 1, 1])?
+        .flatten_all()?
+        .to_vec1::<f32>()?
+        .into_iter()
+        .map(|s| s.min(max).exp())
+        .collect();
+    let cpb = ContinuousBias::new(src, heads, v2.cpb_hidden, v2.trained_window(stage), |s| {
+        part(&format!("cpb_mlp.{s}"))
+    })?;
+    Ok((scales, cpb))
 }
 
 impl Block {
-    /// Block `j` of stage `i`; `nominal` is the model's window.
+    /// Block `j` of stage `i`; `nominal` is the model's window; `v2` for the second version.
+    #[allow(clippy::too_many_arguments)]
     pub fn new(
         src: &dyn WeightSource,
         stage: usize,
@@ -458,31 +642,45 @@ impl Block {
         heads: usize,
         hidden: usize,
         nominal: (usize, usize),
+        v2: Option<&V2Shape>,
     ) -> Result<Self> {
         let sub =
             |prefix: &'static str| move |s: &str| Part::block(stage, j, &format!("{prefix}.{s}"));
-        let table = src.bias_table(
-            Part::block(stage, j, "attn.relative_position_bias_table"),
-            heads,
-        )?;
-        let what = format!("the bias table of stage {stage} block {j}");
-        let bias_table = BiasTable::new(table, nominal, &what)?;
-        let (qkv, q_scaled) = WindowAttention::new(src, dim, heads, sub("attn.qkv"))?;
+        let (bias, cosine, mask_fill, eps) = match v2 {
+            Some(v2) => {
+                let (scales, cpb) = v2_attention(src, heads, v2, stage, sub("attn"))?;
+                let bias = PositionBias::Continuous(cpb);
+                (bias, Some(scales), v2.mask_fill, v2.norm_eps)
+            }
+            None => {
+                let table = src.bias_table(
+                    Part::block(stage, j, "attn.relative_position_bias_table"),
+                    heads,
+                )?;
+                let what = format!("the bias table of stage {stage} block {j}");
+                let bias = PositionBias::Table(BiasTable::new(table, nominal, &what)?);
+                (bias, None, -100.0, LN_EPS)
+            }
+        };
+        let (qkv, q_scaled) = WindowAttention::new(src, dim, heads, cosine.is_some(), sub("attn"))?;
         Ok(Block {
-            norm1: LayerNorm::new(src, dim, sub("norm1"))?,
+            norm1: LayerNorm::with_eps(src, dim, sub("norm1"), eps)?,
             attn: WindowAttention {
                 heads,
                 qkv,
                 q_scaled,
                 proj: Linear::new(src, dim, dim, true, sub("attn.proj"))?,
-                bias_table,
+                bias,
+                cosine,
+                mask_fill,
                 plan: Mutex::new(None),
             },
-            norm2: LayerNorm::new(src, dim, sub("norm2"))?,
+            norm2: LayerNorm::with_eps(src, dim, sub("norm2"), eps)?,
             mlp: Mlp {
                 fc1: Linear::new(src, dim, hidden, true, sub("mlp.fc1"))?,
                 fc2: Linear::new(src, hidden, dim, true, sub("mlp.fc2"))?,
             },
+            post_norm: v2.is_some(),
         })
     }
 
@@ -494,6 +692,12 @@ impl Block {
     ) -> Result<(Tensor, Option<Tensor>)> {
         if self.frozen() && !x.track_op() {
             return self.forward_frozen(x, geo, keep);
+        }
+        if self.post_norm {
+            let (a, attn) = self.attn.forward(x, geo, keep)?;
+            let x = (x + self.norm1.forward(&a)?)?;
+            let x = (&x + self.norm2.forward(&self.mlp.forward(&x)?)?)?;
+            return Ok((x, attn));
         }
         let (a, attn) = self.attn.forward(&self.norm1.forward(x)?, geo, keep)?;
         let x = (x + a)?;
@@ -532,9 +736,16 @@ impl Block {
         let rows = shape.windows * shape.n;
         let (mut y, probs) = with_f32(x, |xs| {
             let mut win = vec![0f32; rows * c];
-            self.norm1.gather_rows(xs, c, &plan.gather, &mut win)?;
+            if self.post_norm {
+                kernels::gather_rows(xs, c, &plan.gather, &mut win);
+            } else {
+                self.norm1.gather_rows(xs, c, &plan.gather, &mut win)?;
+            }
             let mut qkv = vec![0f32; rows * 3 * c];
             self.attn.qkv.forward_rows(&win, &mut qkv, false)?;
+            if let Some(scales) = &self.attn.cosine {
+                kernels::cosine_qk(&mut qkv, shape, scales);
+            }
             let mut probs = keep.then(|| vec![0f32; shape.windows * heads * shape.n * shape.n]);
             kernels::window_attention(
                 &qkv,
@@ -549,16 +760,34 @@ impl Block {
             self.attn.proj.forward_rows(&win, &mut proj, false)?;
             drop(win);
             let mut y = xs.to_vec();
-            kernels::scatter_add(&mut y, c, &proj, &plan.scatter);
+            if self.post_norm {
+                // norm1 of the attention output, gathered back to the grid in one pass.
+                let mut back = vec![0f32; tokens * c];
+                self.norm1.gather_rows(&proj, c, &plan.scatter, &mut back)?;
+                kernels::add_assign(&mut y, &back);
+            } else {
+                kernels::scatter_add(&mut y, c, &proj, &plan.scatter);
+            }
             Ok((y, probs))
         })?;
-        let mut normed = vec![0f32; tokens * c];
-        self.norm2.rows(&y, c, &mut normed)?;
         let mut hidden = vec![0f32; tokens * self.mlp.fc1.output_dim()?];
-        self.mlp.fc1.forward_rows(&normed, &mut hidden, false)?;
-        drop(normed);
-        kernels::gelu_in_place(&mut hidden);
-        self.mlp.fc2.forward_rows(&hidden, &mut y, true)?;
+        if self.post_norm {
+            self.mlp.fc1.forward_rows(&y, &mut hidden, false)?;
+            kernels::gelu_in_place(&mut hidden);
+            let mut out = vec![0f32; tokens * c];
+            self.mlp.fc2.forward_rows(&hidden, &mut out, false)?;
+            drop(hidden);
+            let mut normed = vec![0f32; tokens * c];
+            self.norm2.rows(&out, c, &mut normed)?;
+            kernels::add_assign(&mut y, &normed);
+        } else {
+            let mut normed = vec![0f32; tokens * c];
+            self.norm2.rows(&y, c, &mut normed)?;
+            self.mlp.fc1.forward_rows(&normed, &mut hidden, false)?;
+            drop(normed);
+            kernels::gelu_in_place(&mut hidden);
+            self.mlp.fc2.forward_rows(&hidden, &mut y, true)?;
+        }
         let probs = probs
             .map(|p| Tensor::from_vec(p, (shape.windows, heads, shape.n, shape.n), &Device::Cpu))
             .transpose()?;
@@ -567,34 +796,67 @@ impl Block {
 }
 
 /// Patch merging at the start of stage `i`: 2x2 neighbours concatenated, LayerNorm(4C), Linear
-/// 4C -> 2C without bias.
+/// 4C -> 2C without bias; V2 reduces first and then normalises (LayerNorm(2C)).
 pub struct PatchMerging {
     norm: LayerNorm,
     reduction: Linear,
+    norm_after: bool,
 }
 
 impl PatchMerging {
-    pub fn new(src: &dyn WeightSource, stage: usize, dim_in: usize) -> Result<Self> {
-        let norm = LayerNorm::new(src, 4 * dim_in, |s| {
-            Part::merge(stage, &format!("norm.{s}"))
-        })?;
+    pub fn new(src: &dyn WeightSource, stage: usize, dim_in: usize, v2: bool) -> Result<Self> {
+        let width = if v2 { 2 * dim_in } else { 4 * dim_in };
+        let norm = LayerNorm::new(src, width, |s| Part::merge(stage, &format!("norm.{s}")))?;
         let reduction = Linear::new(src, 4 * dim_in, 2 * dim_in, false, |s| {
             Part::merge(stage, &format!("reduction.{s}"))
         })?;
-        Ok(PatchMerging { norm, reduction })
+        Ok(PatchMerging {
+            norm,
+            reduction,
+            norm_after: v2,
+        })
     }
 
     pub fn forward(&self, x: &Tensor, grid: (usize, usize)) -> Result<(Tensor, (usize, usize))> {
         let (_, c) = x.dims2()?;
         let (idx, out) = crate::engine::geometry::merge_index(grid);
-        if self.norm.frozen() && self.reduction.frozen() && !x.track_op() {
+        let frozen = self.norm.frozen() && self.reduction.frozen() && !x.track_op();
+        if self.norm_after {
+            let rows = out.0 * out.1;
+            let dim = self.reduction.output_dim()?;
+            if frozen {
+                let mut merged = vec![0f32; rows * 4 * c];
+                with_f32(x, |xs| {
+                    kernels::gather_rows(xs, c, &idx, &mut merged);
+                    Ok(())
+                })?;
+                let mut y = vec![0f32; rows * dim];
+                self.reduction.forward_rows(&merged, &mut y, false)?;
+                drop(merged);
+                let mut normed = vec![0f32; rows * dim];
+                self.norm.rows(&y, dim, &mut normed)?;
+                return Ok((Tensor::from_vec(normed, (rows, dim), &Device::Cpu)?, out));
+            }
+            let merged = gather_rows(x, idx)?.reshape((rows, 4 * c))?;
+            return Ok((self.norm.forward(&self.reduction.forward(&merged)?)?, out));
+        }
+        if frozen {
             // Gather the 2x2 neighbours and normalise in one pass, then the reduction.
             let rows = out.0 * out.1;
             let mut merged = vec![0f32; rows * 4 * c];
             with_f32(x, |xs| {
                 with_f32(&self.norm.weight, |w| {
                     with_f32(&self.norm.bias, |b| {
-                        kernels::concat_layer_norm(xs, c, &idx, 4, w, b, LN_EPS, &mut merged);
+                        kernels::concat_layer_norm(
+                            xs,
+                            c,
+                            &idx,
+                            4,
+                            w,
+                            b,
+                            self.norm.eps,
+                            &mut merged,
+                        );
                         Ok(())
                     })
                 })
@@ -607,5 +869,133 @@ impl PatchMerging {
         let merged = gather_rows(x, idx)?.reshape((out.0 * out.1, 4 * c))?;
         let y = self.reduction.forward(&self.norm.forward(&merged)?)?;
         Ok((y, out))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::geometry::{AxisPlan, PadOrder};
+    use rand::SeedableRng;
+    use rand_distr::{Distribution, Normal};
+    use std::cell::RefCell;
+
+    /// Any tensor by its shape: norms near 1 / 0, everything else N(0, 1/fan_in) (a logit scale
+    /// above the clamp in head 0).
+    struct Source(RefCell<rand::rngs::StdRng>);
+
+    impl WeightSource for Source {
+        fn get(&self, part: Part, shape: &[usize]) -> Result<Tensor> {
+            let n: usize = shape.iter().product();
+            let name = part.canonical();
+            let fan_in = if shape.len() > 1 {
+                shape[1..].iter().product()
+            } else {
+                1
+            };
+            let std = if name.contains("norm") {
+                0.1
+            } else {
+                (1.0 / fan_in as f64).sqrt()
+            };
+            let d = Normal::new(0.0, std).unwrap();
+            let mut rng = self.0.borrow_mut();
+            let mut v: Vec<f32> = (0..n).map(|_| d.sample(&mut *rng) as f32).collect();
+            if name.ends_with("norm1.weight") || name.ends_with("norm2.weight") {
+                v.iter_mut().for_each(|x| *x += 1.0);
+            }
+            if name.ends_with("logit_scale") {
+                v.iter_mut().for_each(|x| *x += 2.3);
+                v[0] = 5.0;
+            }
+            Ok(Tensor::from_vec(v, shape, &Device::Cpu)?)
+        }
+        fn bias_table(&self, _: Part, _: usize) -> Result<Tensor> {
+            unreachable!("V2 blocks have no table")
+        }
+    }
+
+    fn v2_shape() -> V2Shape {
+        V2Shape {
+            cpb_hidden: 16,
+            trained_windows: vec![Some((6, 6))],
+            built_for: None,
+            mask_fill: -200.0,
+            norm_eps: 1e-5,
+        }
+    }
+
+    /// The logit scale is clamped at ln 100 before exp (timm 1.0.31 and transformers 5.23.0:
+    /// `torch.clamp(logit_scale, max=math.log(1 / 0.01)).exp()`).
+    #[test]
+    fn logit_scale_is_clamped_at_ln_100() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(5)));
+        let (scales, _) = v2_attention(&src, 3, &v2_shape(), 0, |s| {
+            Part::block(0, 0, &format!("attn.{s}"))
+        })
+        .unwrap();
+        assert!((scales[0] - 100.0).abs() < 1e-4, "{scales:?}");
+        assert!(scales[1] < 100.0 && scales[1] > 1.0);
+    }
+
+    /// The bias MLP runs once per block and geometry: a second image of the same size reuses
+    /// the plan (and the bias in it); another size makes a new one.
+    #[test]
+    fn v2_bias_is_made_once_per_geometry() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(3)));
+        let block = Block::new(&src, 0, 0, 8, 2, 16, (4, 4), Some(&v2_shape())).unwrap();
+        let geo = |n| BlockGeometry {
+            rows: AxisPlan::new(n, 4, 0, PadOrder::ShiftThenPad),
+            cols: AxisPlan::new(6, 4, 0, PadOrder::ShiftThenPad),
+        };
+        let first = block.attn.plan(&geo(5)).unwrap();
+        assert!(Arc::ptr_eq(&first, &block.attn.plan(&geo(5)).unwrap()));
+        let other = block.attn.plan(&geo(9)).unwrap();
+        assert!(!Arc::ptr_eq(&first, &other));
+        assert_eq!(first.bias, other.bias); // same 4x4 window, same bias
+    }
+
+    /// A V2 block on the kernels equals the same block on the composed tensor operations
+    /// (tracked input), on a shifted, padded window layout; so does V2 patch merging.
+    #[test]
+    fn v2_block_and_merging_kernels_match_the_composed_path() {
+        let src = Source(RefCell::new(rand::rngs::StdRng::seed_from_u64(9)));
+        let (dim, heads) = (12, 3);
+        let block = Block::new(&src, 0, 1, dim, heads, 24, (4, 4), Some(&v2_shape())).unwrap();
+        let geo = BlockGeometry {
+            rows: AxisPlan::new(7, 4, 2, PadOrder::PadThenShift),
+            cols: AxisPlan::new(6, 4, 2, PadOrder::PadThenShift),
+        };
+        let x = Tensor::randn(0f32, 2.0, (42, dim), &Device::Cpu).unwrap();
+        let (fast, probs) = block.forward(&x, &geo, true).unwrap();
+        let tracked = candle_core::Var::from_tensor(&x).unwrap();
+        let (slow, probs_slow) = block.forward(tracked.as_tensor(), &geo, true).unwrap();
+        let diff = |a: &Tensor, b: &Tensor| -> f32 {
+            let d: f32 = (a - b)
+                .unwrap()
+                .abs()
+                .unwrap()
+                .max_all()
+                .unwrap()
+                .to_scalar()
+                .unwrap();
+            let m: f32 = b.abs().unwrap().max_all().unwrap().to_scalar().unwrap();
+            d / m
+        };
+        assert!(
+            diff(&fast, &slow.detach()) < 2e-6,
+            "{}",
+            diff(&fast, &slow.detach())
+        );
+        // Head 0 runs at the clamped scale of 100, where a rounding of the cosine moves a
+        // logit by about 1e-5: the weights agree to that, not to the last bit.
+        let p = diff(&probs.unwrap(), &probs_slow.unwrap().detach());
+        assert!(p < 1e-4, "{p}");
+
+        let merge = PatchMerging::new(&src, 1, dim, true).unwrap();
+        let (fast, grid) = merge.forward(&x, (7, 6)).unwrap();
+        let (slow, _) = merge.forward(tracked.as_tensor(), (7, 6)).unwrap();
+        assert_eq!(grid, (4, 3));
+        assert!(diff(&fast, &slow.detach()) < 2e-6);
     }
 }

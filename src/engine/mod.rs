@@ -7,6 +7,7 @@
 
 pub mod checkpoint;
 pub mod config;
+pub mod folder;
 pub mod geometry;
 pub mod input;
 pub mod kernels;
@@ -21,4 +22,6 @@ pub use model::{
     random_timm_state_dict, AttentionTap, Backbone, ForwardOptions, LoadReport, Progress,
     RunControl, StageOutputs,
 };
-pub use session::{open_checkpoint, read_override, LoadedCheckpoint, Session, SessionOptions};
+pub use session::{
+    open_checkpoint, open_checkpoint_with, read_override, LoadedCheckpoint, Session, SessionOptions,
+};

@@ -4,7 +4,7 @@
 //! `forward` takes one normalised image at its own size, lays out the partition with
 //! [`Geometry`], reports progress after every block and stops between blocks when cancelled.
 
-use super::checkpoint::{ignored_reason, Checkpoint, LayoutKind, Part, BLOCK_PARTS};
+use super::checkpoint::{block_parts, ignored_reason, Checkpoint, Family, LayoutKind, Part};
 use super::config::{Config, ConfigOverride};
 use super::layers::{Block, LayerNorm, PatchEmbed, PatchMerging, WeightSource};
 use crate::engine::geometry::{Geometry, Semantics};
@@ -106,12 +106,13 @@ impl Backbone {
         final_norm: bool,
     ) -> Result<Self> {
         config.validate().map_err(Error::BadArgument)?;
+        let v2 = config.v2.as_ref();
         let embed = PatchEmbed::new(src, config.in_chans, config.embed_dim, config.patch)?;
         let mut stages = Vec::with_capacity(config.n_stages());
         for i in 0..config.n_stages() {
             let dim = config.dim(i);
             let merge = if i > 0 {
-                Some(PatchMerging::new(src, i, config.dim(i - 1))?)
+                Some(PatchMerging::new(src, i, config.dim(i - 1), v2.is_some())?)
             } else {
                 None
             };
@@ -125,6 +126,7 @@ impl Backbone {
                         config.heads[i],
                         config.mlp_hidden(i),
                         config.window,
+                        v2,
                     )
                 })
                 .collect::<Result<Vec<_>>>()?;
@@ -141,7 +143,13 @@ impl Backbone {
         }
         let last = config.dim(config.n_stages() - 1);
         let final_norm = if final_norm {
-            Some(LayerNorm::new(src, last, |s| Part::FinalNorm(s.into()))?)
+            let eps = v2.map_or(super::layers::LN_EPS, |v| v.norm_eps);
+            Some(LayerNorm::with_eps(
+                src,
+                last,
+                |s| Part::FinalNorm(s.into()),
+                eps,
+            )?)
         } else {
             None
         };
@@ -197,6 +205,10 @@ impl Backbone {
                 other => other,
             })?;
         let mut sem = ckpt.layout.kind.default_semantics(stage_norms);
+        if ckpt.family == Family::V2 && ckpt.layout.kind.is_transformers() {
+            // transformers' Swinv2 fixes each stage's window when the model is built.
+            sem.small_stage = crate::engine::geometry::SmallStage::AsBuilt;
+        }
         if let Some(p) = over.pad_order {
             sem.pad_order = p;
         }
@@ -282,7 +294,7 @@ impl Backbone {
         // Check every block's bias table serves its window before spending any time.
         for (stage, sg) in self.stages.iter().zip(&geometry.stages) {
             for (block, bg) in stage.blocks.iter().zip(&sg.blocks) {
-                block.attn.bias_table.window_for(bg.window())?;
+                block.attn.bias.check(bg.window())?;
             }
         }
         let total = self.config.total_blocks() + 1;
@@ -416,7 +428,7 @@ fn describe_missing(ckpt: &Checkpoint, missing: &[&Part]) -> String {
                 .iter()
                 .take_while(|p| matches!(p, Part::Block(s2, b2, _) if s2 == s && b2 == b))
                 .collect();
-            if same.len() == BLOCK_PARTS.len() {
+            if same.len() == block_parts(ckpt.family).len() {
                 entries.push(format!(
                     "{}{s}.blocks.{b}.* (the whole block)",
                     ckpt.layout.stages_prefix()
@@ -486,8 +498,13 @@ pub fn required_parts(cfg: &Config) -> Vec<Part> {
                 out.push(Part::merge(i, s));
             }
         }
+        let family = if cfg.v2.is_some() {
+            Family::V2
+        } else {
+            Family::V1
+        };
         for j in 0..depth {
-            for s in BLOCK_PARTS {
+            for s in block_parts(family) {
                 out.push(Part::block(i, j, s));
             }
         }
@@ -649,8 +666,15 @@ pub struct LoadReport {
     pub stage_norms: bool,
     pub final_norm: bool,
     pub semantics: Semantics,
-    /// Window each stage's first bias table was made for.
+    /// Window each stage's first bias table was made for (the first version only).
     pub table_windows: Vec<(usize, usize)>,
+    /// The family: "Swin V1" or "Swin V2".
+    pub family: String,
+    /// The transformers `config.json` read beside the weights, and the fields taken from it.
+    pub config_json: Option<String>,
+    pub from_config_json: Vec<String>,
+    /// Why the `config.json` beside the weights was not used.
+    pub config_json_ignored: Option<String>,
 }
 
 impl LoadReport {
@@ -672,7 +696,12 @@ impl LoadReport {
         LoadReport {
             file: ckpt.path.display().to_string(),
             format,
-            layout: ckpt.layout.kind.describe().to_string(),
+            layout: match (ckpt.family, ckpt.layout.kind.is_transformers()) {
+                (Family::V2, true) => {
+                    "transformers Swinv2 (attention.self.query/key/value names)".into()
+                }
+                _ => ckpt.layout.kind.describe().to_string(),
+            },
             prefix: ckpt.layout.prefix.clone(),
             other_backbones: ckpt.other_prefixes.clone(),
             config: model.config.clone(),
@@ -686,8 +715,16 @@ impl LoadReport {
             table_windows: model
                 .stages
                 .iter()
-                .map(|s| s.blocks[0].attn.bias_table.made_for())
+                .filter_map(|s| s.blocks[0].attn.bias.made_for())
                 .collect(),
+            family: ckpt.family.describe().to_string(),
+            config_json: ckpt.beside.as_ref().map(|b| b.path.display().to_string()),
+            from_config_json: ckpt
+                .beside
+                .as_ref()
+                .map(|b| b.fields.clone())
+                .unwrap_or_default(),
+            config_json_ignored: ckpt.beside.as_ref().and_then(|b| b.ignored.clone()),
         }
     }
 }
@@ -725,17 +762,61 @@ impl std::fmt::Display for LoadReport {
             ww = c.window.1,
             m = c.mlp_ratio
         )?;
-        let tw: Vec<String> = self
-            .table_windows
-            .iter()
-            .map(|(a, b)| format!("{a}x{b}"))
-            .collect();
-        writeln!(
-            f,
-            "bias tables  made for windows {} (stage 0..{})",
-            tw.join(", "),
-            tw.len() - 1
-        )?;
+        writeln!(f, "family       {}", self.family)?;
+        if let Some(v2) = &c.v2 {
+            let tw: Vec<String> = v2
+                .trained_windows
+                .iter()
+                .map(|w| w.map_or("own".into(), |(a, b)| format!("{a}x{b}")))
+                .collect();
+            let trained = if v2.trained_windows.iter().all(Option::is_none) {
+                "none: each block's own window normalises its coordinates".to_string()
+            } else {
+                format!(
+                    "{} (stage 0..{}; 'own': the block's own window)",
+                    tw.join(", "),
+                    tw.len().saturating_sub(1)
+                )
+            };
+            writeln!(
+                f,
+                "position     continuous bias MLP ({} hidden), made once per window",
+                v2.cpb_hidden
+            )?;
+            writeln!(f, "pretrained   windows {trained}")?;
+            if let Some((h, w)) = v2.built_for {
+                writeln!(
+                    f,
+                    "built for    {w}x{h} pixels (W x H): windows fixed per stage from it"
+                )?;
+            }
+        } else {
+            let tw: Vec<String> = self
+                .table_windows
+                .iter()
+                .map(|(a, b)| format!("{a}x{b}"))
+                .collect();
+            writeln!(
+                f,
+                "bias tables  made for windows {} (stage 0..{})",
+                tw.join(", "),
+                tw.len().saturating_sub(1)
+            )?;
+        }
+        if let (Some(path), Some(why)) = (&self.config_json, &self.config_json_ignored) {
+            writeln!(f, "config.json {path} not used: {why}")?;
+        } else if let Some(path) = &self.config_json {
+            writeln!(
+                f,
+                "config.json {} gave: {} (a --config file still overrides)",
+                path,
+                if self.from_config_json.is_empty() {
+                    "nothing Mullion uses".to_string()
+                } else {
+                    self.from_config_json.join(", ")
+                }
+            )?;
+        }
         writeln!(
             f,
             "parameters   {} ({:.2}M) in the tensors used",
@@ -773,7 +854,7 @@ impl std::fmt::Display for LoadReport {
         if !buffers.is_empty() {
             writeln!(
                 f,
-                "  ignored    {} buffers (relative_position_index, attn_mask), recomputed",
+                "  ignored    {} buffers (relative_position_index, attn_mask, relative_coords_table), recomputed",
                 buffers.len()
             )?;
         }

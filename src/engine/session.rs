@@ -88,6 +88,28 @@ pub fn read_override(path: Option<&Path>) -> Result<ConfigOverride> {
     if let Some(p) = over.patch {
         within("patch", p, MAX_PATCH)?;
     }
+    match &over.trained_window {
+        Some(super::config::TrainedWindow::All(m)) if *m > MAX_WINDOW => {
+            within("trained_window", *m, MAX_WINDOW)?
+        }
+        Some(super::config::TrainedWindow::PerStage(v)) => {
+            if v.len() > MAX_STAGES {
+                return Err(bad(
+                    "trained_window",
+                    format!("has more than {MAX_STAGES} entries"),
+                ));
+            }
+            for &m in v.iter().filter(|&&m| m > 0) {
+                within("trained_window", m, MAX_WINDOW)?;
+            }
+        }
+        _ => {}
+    }
+    if let Some(b) = over.built_for {
+        let (h, w) = b.dims();
+        within("built_for", h, 1 << 20)?;
+        within("built_for", w, 1 << 20)?;
+    }
     if let Some(c) = over.embed_dim {
         within("embed_dim", c, MAX_CHANNELS)?;
     }
@@ -111,9 +133,14 @@ pub struct LoadedCheckpoint {
 /// Open `weights` (safetensors or a PyTorch pickle), read the shape off its tensors, apply the
 /// optional configuration file and build the backbone.
 pub fn open_checkpoint(weights: &Path, config: Option<&Path>) -> Result<LoadedCheckpoint> {
-    let over = read_override(config)?;
+    open_checkpoint_with(weights, &read_override(config)?)
+}
+
+/// [`open_checkpoint`] with the overrides already read (the window's: from `mullion open
+/// --config`, or the window size typed in when a Swin V2 checkpoint does not state it).
+pub fn open_checkpoint_with(weights: &Path, over: &ConfigOverride) -> Result<LoadedCheckpoint> {
     let ckpt = Checkpoint::open(weights)?;
-    let model = Backbone::from_checkpoint(&ckpt, &over)?;
+    let model = Backbone::from_checkpoint(&ckpt, over)?;
     let report = LoadReport::new(&ckpt, &model);
     Ok(LoadedCheckpoint { model, report })
 }

@@ -17,7 +17,7 @@
 //! sums hold an image that is gone or changed (sums cannot be taken apart), every image is
 //! computed again. The folder is locked for the run ([`crate::io::lock_folder`]).
 
-use super::report::{FailedImage, Shard, ShardInfo};
+use super::report::{checkpoint_hash, FailedImage, Shard, ShardInfo};
 use crate::analysis::compare::{
     linear_cka, prepare_pair_view, token_cosines, weight_drift, CkaSums, CosineSums, Drift,
     DRIFT_COLUMNS,
@@ -713,10 +713,10 @@ pub fn run_compare(args: &CompareOptions) -> Result<CompareOutcome> {
     let settings = format!(
         "mullion {} base {} config {} semantics {} tuned {} config {} semantics {} mean {:?} std {:?}",
         env!("CARGO_PKG_VERSION"),
-        hashes.hash(&args.base.weights)?,
+        checkpoint_hash(&hashes, &args.base.weights)?,
         hash_opt(&args.base.config)?.as_deref().unwrap_or("none"),
         semantics(&a),
-        hashes.hash(&args.tuned.weights)?,
+        checkpoint_hash(&hashes, &args.tuned.weights)?,
         hash_opt(&args.tuned.config)?.as_deref().unwrap_or("none"),
         semantics(&b),
         a.norm.mean,

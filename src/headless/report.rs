@@ -653,7 +653,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
     }
     let session = Session::open(&args.session)?;
     let hashes = ContentHashes::default();
-    let weights = hashes.hash(&args.session.weights)?;
+    let weights = checkpoint_hash(&hashes, &args.session.weights)?;
     // Only a map that compares two runs the base; for the others it would change nothing.
     let base = match &args.base {
         Some(b) => {
@@ -661,7 +661,7 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
             o.weights = b.clone();
             o.config = None;
             let s = Session::open(&o)?;
-            Some((s, hashes.hash(b)?))
+            Some((s, checkpoint_hash(&hashes, b)?))
         }
         None => None,
     };
@@ -771,4 +771,16 @@ pub fn run_report(args: &ReportOptions) -> Result<ReportOutcome> {
         reused,
         rows: n_rows,
     })
+}
+
+/// The content hash of a checkpoint as a run reads it: its weights file (inside a transformers
+/// folder when a folder is given) and, when there is one, the `config.json` beside it, which
+/// changes what is computed. A file without `config.json` hashes as the file alone.
+pub(super) fn checkpoint_hash(hashes: &ContentHashes, weights: &Path) -> Result<String> {
+    let file = crate::engine::folder::weights_file(weights)?;
+    let hash = hashes.hash(&file)?;
+    match file.parent().map(|d| d.join("config.json")) {
+        Some(c) if c.is_file() => Ok(hash_bytes(format!("{hash}{}", hashes.hash(&c)?).as_bytes())),
+        _ => Ok(hash),
+    }
 }

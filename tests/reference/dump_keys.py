@@ -1,7 +1,7 @@
 """Print state_dict keys and shapes of a tiny Swin (2 stages, depth 2 each)
 for one library, so the key layout can be documented in KEYS.md.
 
-Usage: python tests/reference/dump_keys.py --lib timm|tf4|tf5
+Usage: python tests/reference/dump_keys.py --lib timm|tf4|tf5|v2
 """
 import argparse
 
@@ -30,11 +30,32 @@ def tiny_tf():
     }
 
 
+def tiny_v2():
+    """Swin V2 in both libraries (one environment: requirements-padding.txt)."""
+    from timm.models.swin_transformer_v2 import SwinTransformerV2
+    from transformers import Swinv2Backbone, Swinv2Config, Swinv2Model
+
+    cfg = Swinv2Config(image_size=64, embed_dim=16, depths=[2, 2], num_heads=[1, 2],
+                       window_size=8, out_features=["stage1", "stage2"])
+    return {
+        "timm SwinTransformerV2": SwinTransformerV2(
+            img_size=64, embed_dim=16, depths=(2, 2), num_heads=(1, 2), window_size=8,
+            num_classes=10),
+        "Swinv2Model": Swinv2Model(cfg),
+        "Swinv2Backbone": Swinv2Backbone(cfg),
+    }
+
+
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--lib", choices=["timm", "tf4", "tf5"], required=True)
+    ap.add_argument("--lib", choices=["timm", "tf4", "tf5", "v2"], required=True)
     a = ap.parse_args()
-    if a.lib == "timm":
+    if a.lib == "v2":
+        import timm
+        import transformers
+        print(f"# timm {timm.__version__}, transformers {transformers.__version__}, torch {torch.__version__}")
+        models = tiny_v2()
+    elif a.lib == "timm":
         import timm
         print(f"# timm {timm.__version__}, torch {torch.__version__}")
         models = tiny_timm()

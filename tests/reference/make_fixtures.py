@@ -245,8 +245,10 @@ def dump_json(obj):
 
 
 def write_index():
+    from make_v2_fixtures import V2_CASES  # Swin V2 cases, written by make_v2_fixtures.py
+
     with open(os.path.join(FIXTURES, "cases.json"), "w") as f:
-        json.dump(sorted(CASES), f, indent=2)
+        json.dump(sorted(set(CASES) | set(V2_CASES)), f, indent=2)
         f.write("\n")
 
 

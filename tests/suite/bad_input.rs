@@ -33,9 +33,11 @@ fn good_checkpoint(dir: &Path) -> (PathBuf, BTreeMap<String, Tensor>) {
 }
 
 fn load_error(path: &Path) -> String {
-    match Checkpoint::open(path)
-        .and_then(|c| Backbone::from_checkpoint(&c, &ConfigOverride::default()))
-    {
+    load_error_with(path, &ConfigOverride::default())
+}
+
+fn load_error_with(path: &Path, over: &ConfigOverride) -> String {
+    match Checkpoint::open(path).and_then(|c| Backbone::from_checkpoint(&c, over)) {
         Ok(_) => panic!("{} loaded", path.display()),
         Err(e) => e.to_string(),
     }
@@ -515,4 +517,71 @@ fn toolkit_embedding_without_stages_is_refused() {
             && msg.contains("stages.*.blocks.*"),
         "{msg}"
     );
+}
+
+/// A Swin V2 checkpoint written by timm 1.0.31 (tests/fixtures/timmv2_odd) with its position
+/// bias MLP taken out, and one with a patch merging weight of the wrong width: the loader names
+/// the file and what is missing or wrong; `mullion features` exits with 1.
+#[test]
+fn v2_without_its_bias_mlp_or_with_a_bad_merging_width() {
+    let dir = tempfile::tempdir().unwrap();
+    let src = crate::common::fixtures().join("timmv2_odd/weights.safetensors");
+    let full = candle_core::safetensors::load(&src, &candle_core::Device::Cpu).unwrap();
+    let over = dir.path().join("window.json");
+    std::fs::write(&over, r#"{"window": 8}"#).unwrap();
+    let image = png(dir.path(), "in.png", 40, 36);
+    let window: ConfigOverride = serde_json::from_str(r#"{"window": 8}"#).unwrap();
+    let load = |path: &Path| load_error_with(path, &window);
+    let features = |path: &Path| {
+        mullion(&[
+            "features",
+            "--weights",
+            path.to_str().unwrap(),
+            "--config",
+            over.to_str().unwrap(),
+            "--image",
+            image.to_str().unwrap(),
+            "--out",
+            dir.path().join("f.safetensors").to_str().unwrap(),
+        ])
+    };
+
+    let mut no_mlp = full.clone();
+    no_mlp.retain(|k, _| !k.contains("cpb_mlp"));
+    let path = dir.path().join("no_bias_mlp.safetensors");
+    candle_core::safetensors::save(&no_mlp, &path).unwrap();
+    let msg = load(&path);
+    for needle in [
+        "no_bias_mlp.safetensors",
+        "layers.0.blocks.0.attn.cpb_mlp.0.weight",
+        "layers.0.blocks.0.attn.cpb_mlp.2.weight",
+        "missing",
+    ] {
+        assert!(msg.contains(needle), "missing '{needle}' in: {msg}");
+    }
+    let (code, err) = features(&path);
+    assert_eq!(code, 1, "{err}");
+    assert!(
+        err.contains("no_bias_mlp.safetensors") && err.contains("cpb_mlp"),
+        "{err}"
+    );
+
+    let mut narrow = full.clone();
+    let w = narrow["layers.1.downsample.reduction.weight"].clone();
+    narrow.insert(
+        "layers.1.downsample.reduction.weight".into(),
+        w.narrow(1, 0, 24).unwrap().contiguous().unwrap(),
+    );
+    let path = dir.path().join("narrow_merge.safetensors");
+    candle_core::safetensors::save(&narrow, &path).unwrap();
+    let msg = load(&path);
+    assert!(
+        msg.contains("narrow_merge.safetensors")
+            && msg.contains("layers.1.downsample.reduction.weight")
+            && msg.contains("[16, 24]")
+            && msg.contains("[16, 32]"),
+        "{msg}"
+    );
+    let (code, err) = features(&path);
+    assert_eq!(code, 1, "{err}");
 }

@@ -11,8 +11,12 @@
 //! padding by 0 pixels changes nothing, and every attention row sums to 1.
 
 use crate::common::{mullion, num, read_csv};
-use crate::kit::{harness, type_path};
+use crate::kit::{harness, type_path, wait};
 use crate::reference_outputs::{case, case_names};
+use egui_kittest::kittest::Queryable;
+use egui_kittest::Harness;
+use mullion::app::actions::Action;
+use mullion::app::Window;
 use serde_json::Value;
 use std::path::{Path, PathBuf};
 
@@ -24,6 +28,9 @@ struct Case {
     flags: Vec<String>,
     /// Stages of the model.
     stages: usize,
+    /// The shape the tensors do not tell (a timm Swin V2 file's window), as a `--config` file
+    /// gives it.
+    shape: Option<Value>,
 }
 
 fn cases() -> Vec<Case> {
@@ -42,6 +49,7 @@ fn cases() -> Vec<Case> {
                 weights: dir.join(case["weights"].as_str().unwrap()),
                 image: dir.join(case["image"].as_str().unwrap()),
                 stages: case["config"]["depths"].as_array().unwrap().len(),
+                shape: case.get("override").cloned(),
                 name,
                 flags,
             }
@@ -53,9 +61,25 @@ fn s(p: &Path) -> &str {
     p.to_str().unwrap()
 }
 
-fn run(case: &Case, args: &[&str]) -> crate::common::Run {
-    let mut all: Vec<&str> = args.to_vec();
-    all.extend(case.flags.iter().map(String::as_str));
+/// Run `mullion` on a case: its pad flags, and `--config` (with `--tuned-config` for
+/// `compare`) when the case has a shape file in `dir`.
+fn run(case: &Case, dir: &Path, args: &[&str]) -> crate::common::Run {
+    let mut all: Vec<String> = args.iter().map(|a| a.to_string()).collect();
+    all.extend(case.flags.iter().cloned());
+    if let Some(shape) = &case.shape {
+        let file = dir.join("shape.json");
+        std::fs::write(&file, shape.to_string()).unwrap();
+        let flags: &[&str] = if args[0] == "compare" {
+            &["--config", "--tuned-config"]
+        } else {
+            &["--config"]
+        };
+        for f in flags {
+            all.push(f.to_string());
+            all.push(s(&file).to_string());
+        }
+    }
+    let all: Vec<&str> = all.iter().map(String::as_str).collect();
     let r = mullion(&all);
     assert!(
         r.ok(),
@@ -92,6 +116,7 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
         let fig = o.join("figure.png");
         run(
             case,
+            o,
             &[
                 "figure",
                 "--weights",
@@ -128,6 +153,7 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
         let report = o.join("report");
         run(
             case,
+            o,
             &[
                 "report",
                 "--weights",
@@ -156,6 +182,7 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
         let cmp = o.join("compare");
         run(
             case,
+            o,
             &[
                 "compare",
                 "--base",
@@ -202,6 +229,7 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
         let pad = o.join("padding");
         run(
             case,
+            o,
             &[
                 "padding",
                 "--weights",
@@ -232,6 +260,7 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
         let att = o.join("attention.safetensors");
         run(
             case,
+            o,
             &[
                 "attention",
                 "--weights",
@@ -262,11 +291,44 @@ fn every_family_goes_through_figure_report_compare_padding_and_attention() {
     }
 }
 
+/// A timm Swin V2 file states no window: the window asks for it, the user types it (and the
+/// window it was pretrained at) and presses the button; a per-stage pretrained window can only
+/// come from a file, as `mullion open --config` gives it.
+fn answer_the_window_question(h: &mut Harness<'_, Window>, case: &Case, shape: &Value) {
+    let q = h.state().bench.window_question.clone();
+    let q = q.unwrap_or_else(|| panic!("{}: the window did not ask for the window", case.name));
+    assert_eq!(q.path, case.weights);
+    let window = shape["window"].as_u64().unwrap() as usize;
+    match &shape["trained_window"] {
+        Value::Array(_) => {
+            let over = serde_json::from_value(shape.clone()).unwrap();
+            let b = &mut h.state_mut().bench;
+            b.shape_overrides.push((case.weights.clone(), over));
+            b.apply(Action::DismissWindowQuestion);
+            b.open_weights(&case.weights);
+        }
+        trained => {
+            let panel = &mut h.state_mut().panels.window_question;
+            panel.window = window;
+            panel.trained = trained.as_u64().unwrap_or(0) as usize;
+            h.run_steps(2);
+            h.get_by_label("Open with this window").click();
+            h.run_steps(2);
+        }
+    }
+    wait(h);
+    assert!(h.state().bench.window_question.is_none());
+    h.state_mut().bench.messages.clear();
+}
+
 #[test]
 fn every_family_opens_in_the_window() {
     for case in cases() {
         let mut h = harness();
         type_path(&mut h, &case.weights, "Open path");
+        if let Some(shape) = &case.shape {
+            answer_the_window_question(&mut h, &case, shape);
+        }
         type_path(&mut h, &case.image, "Open path");
         let b = &h.state().bench;
         let errors: Vec<_> = b
@@ -286,5 +348,22 @@ fn every_family_opens_in_the_window() {
             "{}: a panel per stage",
             case.name
         );
+        let depths = &b.weights.as_ref().unwrap().model.config.depths;
+        assert_eq!(depths.len(), case.stages, "{}", case.name);
     }
+}
+
+/// `mullion open --config` reads its file before any window opens: a broken one is bad usage
+/// (exit 2) named on the terminal, and `--config` without `--weights` is refused the same way.
+#[test]
+fn open_reads_its_shape_file_before_the_window() {
+    let dir = tempfile::tempdir().unwrap();
+    let broken = dir.path().join("shape.json");
+    std::fs::write(&broken, "{\"window\": }").unwrap();
+    let weights = crate::common::fixtures().join("timmv2_odd/weights.safetensors");
+    let r = mullion(&["open", "--weights", s(&weights), "--config", s(&broken)]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("shape.json"), "{}", r.stderr);
+    let r = mullion(&["open", "--config", s(&broken)]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
 }

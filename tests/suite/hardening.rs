@@ -946,7 +946,8 @@ mod properties {
         prop_oneof![
             Just(SmallStage::Clamp),
             Just(SmallStage::PadUp),
-            Just(SmallStage::ClampPerAxis)
+            Just(SmallStage::ClampPerAxis),
+            Just(SmallStage::AsBuilt)
         ]
     }
 
@@ -1015,6 +1016,7 @@ mod properties {
                 heads: vec![1; stages],
                 window: (window, window),
                 mlp_ratio: ratio,
+                v2: None,
             };
             prop_assume!(cfg.validate().is_ok());
             let sem = Semantics { pad_order: order, small_stage: policy };

@@ -50,12 +50,28 @@ fn semantics_of(case: &Value) -> Semantics {
         "clamp" => SmallStage::Clamp,
         "pad-up" => SmallStage::PadUp,
         "clamp-per-axis" => SmallStage::ClampPerAxis,
+        "as-built" => SmallStage::AsBuilt,
         other => panic!("unknown small-stage policy {other}"),
     };
     Semantics {
         pad_order,
         small_stage,
     }
+}
+
+/// The shape fields a case gives beside its weights (Swin V2 from timm: the window and the
+/// trained window, which the tensors do not record), as a `--config` file would.
+fn override_of(case: &Value) -> ConfigOverride {
+    case.get("override")
+        .map(|v| serde_json::from_value(v.clone()).expect("case override"))
+        .unwrap_or_default()
+}
+
+/// Open a case's checkpoint and build it with the case's override.
+fn open_case(dir: &Path, case: &Value) -> (Checkpoint, Backbone) {
+    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
+    let model = Backbone::from_checkpoint(&ckpt, &override_of(case)).unwrap();
+    (ckpt, model)
 }
 
 /// `max |got - want| / max |want|`.
@@ -78,8 +94,7 @@ struct Run {
 }
 
 fn run_case(dir: &Path, case: &Value, semantics: Semantics) -> Run {
-    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-    let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+    let (_, model) = open_case(dir, case);
     let img = load_image(dir.join(case["image"].as_str().unwrap())).unwrap();
     let x = normalise(&img, &Normalisation::IMAGENET).unwrap();
     let opts = ForwardOptions {
@@ -157,8 +172,7 @@ fn every_case_matches_its_reference_library() {
 fn layouts_and_default_semantics_are_detected() {
     for name in case_names() {
         let (dir, case) = case(&name);
-        let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-        let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+        let (ckpt, model) = open_case(&dir, &case);
         let want_layout = match case["layout"].as_str().unwrap() {
             "timm" => "Timm",
             "original" => "Original",
@@ -168,6 +182,18 @@ fn layouts_and_default_semantics_are_detected() {
             other => panic!("{name}: unknown layout {other}"),
         };
         assert_eq!(format!("{:?}", ckpt.layout.kind), want_layout, "{name}");
+        let want_family = match case["family"].as_str() {
+            Some("v2") => "V2",
+            _ => "V1",
+        };
+        assert_eq!(format!("{:?}", ckpt.family), want_family, "{name}: family");
+        if want_family == "V2" {
+            // The analytic count of the V2 shape (logit scales, q and v biases, the bias MLP
+            // instead of tables) equals the tensors the loader used.
+            let report = mullion::engine::LoadReport::new(&ckpt, &model);
+            let analytic = model.config.parameter_count(model.has_final_norm(), None);
+            assert_eq!(analytic, report.parameters, "{name}: parameter count");
+        }
         if case["default_semantics"].as_bool() != Some(false) {
             assert_eq!(
                 model.default_semantics,
@@ -202,8 +228,7 @@ fn geometry_matches_what_the_library_used() {
         let Some(stages) = case["geometry"].as_array() else {
             continue;
         };
-        let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-        let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+        let (_, model) = open_case(&dir, &case);
         let size = &case["size"];
         let (w, h) = (
             size[0].as_u64().unwrap() as usize,
@@ -287,8 +312,7 @@ fn the_other_semantics_do_not_match() {
                 ..right
             },
         ] {
-            let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-            let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+            let (_, model) = open_case(&dir, &case);
             let (w, h) = (
                 case["size"][0].as_u64().unwrap() as usize,
                 case["size"][1].as_u64().unwrap() as usize,
@@ -393,14 +417,19 @@ fn features_command_defaults_reproduce_the_library() {
             .status()
             .unwrap();
         assert!(status.success(), "{name}");
-        let got = candle_core::safetensors::load(&out, &Device::Cpu).unwrap();
-        let want = expected(&dir, &case);
-        for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
-            let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
-                continue;
-            };
-            assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
-        }
+        assert_features_match(name, &out, &dir, &case);
+    }
+}
+
+/// The tensors `mullion features` wrote to `out` match the case's expected ones.
+fn assert_features_match(name: &str, out: &Path, dir: &Path, case: &Value) {
+    let got = candle_core::safetensors::load(out, &Device::Cpu).unwrap();
+    let want = expected(dir, case);
+    for key in std::iter::once("embed".to_string()).chain((0..4).map(|i| format!("stage{i}"))) {
+        let (Some(g), Some(w)) = (got.get(&key), want.get(&key)) else {
+            continue;
+        };
+        assert!(rel_diff(g, w) <= TOLERANCE, "{name}/{key}");
     }
 }
 
@@ -446,8 +475,7 @@ fn unfold_order_is_undone_as_the_converter_did_it() {
 #[test]
 fn attention_tap_of_a_shifted_block() {
     let (dir, case) = case("timm_odd");
-    let ckpt = Checkpoint::open(dir.join(case["weights"].as_str().unwrap())).unwrap();
-    let model = Backbone::from_checkpoint(&ckpt, &ConfigOverride::default()).unwrap();
+    let (_, model) = open_case(&dir, &case);
     let img = load_image(dir.join(case["image"].as_str().unwrap())).unwrap();
     let x = normalise(&img, &Normalisation::IMAGENET).unwrap();
     let opts = ForwardOptions {
@@ -488,4 +516,115 @@ fn attention_tap_of_a_shifted_block() {
         }
     }
     assert!(across < 1e-20, "{across}");
+}
+
+/// `mullion features` on Swin V2: the transformers 5.23.0 fixtures opened as folders
+/// (config.json beside model.safetensors gives the window, the size the model was built for and
+/// the pretrained windows), the timm 1.0.31 fixtures with their window given in a --config file.
+/// Every tensor within the tolerance of the library's own values.
+#[test]
+fn features_command_on_swin_v2() {
+    let out_dir = tempfile::tempdir().unwrap();
+    for name in case_names() {
+        let (dir, case) = case(&name);
+        if case["family"].as_str() != Some("v2") {
+            continue;
+        }
+        let out = out_dir.path().join(format!("{name}.safetensors"));
+        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_mullion"));
+        cmd.arg("features");
+        if case.get("config_json").is_some() {
+            cmd.arg("--weights").arg(&dir);
+        } else {
+            let over = out_dir.path().join(format!("{name}.json"));
+            std::fs::write(&over, case["override"].to_string()).unwrap();
+            cmd.arg("--weights")
+                .arg(dir.join(case["weights"].as_str().unwrap()))
+                .arg("--config")
+                .arg(&over);
+        }
+        let run = cmd
+            .arg("--image")
+            .arg(dir.join(case["image"].as_str().unwrap()))
+            .arg("--out")
+            .arg(&out)
+            .output()
+            .unwrap();
+        assert!(
+            run.status.success(),
+            "{name}: {}",
+            String::from_utf8_lossy(&run.stderr)
+        );
+        assert_features_match(&name, &out, &dir, &case);
+    }
+}
+
+/// `mullion inspect` on a transformers folder names the family, the fields taken from
+/// config.json (as transformers 5.23.0 wrote it) and the pretrained windows in use; a --config
+/// file still wins over config.json.
+#[test]
+fn inspect_names_the_v2_family_and_config_json() {
+    let dir = fixtures().join("tfv2_model_trained_window");
+    let dir = dir.to_str().unwrap();
+    let run = crate::common::mullion(&["inspect", dir]);
+    assert!(run.ok(), "{}", run.stderr);
+    for needle in [
+        "Swin V2",
+        "config.json",
+        "image_size",
+        "pretrained_window_sizes",
+        "8x8, 4x4, 4x4",
+        "built for    96x96",
+        "as-built",
+        "transformers Swinv2",
+    ] {
+        assert!(
+            run.stdout.contains(needle),
+            "missing '{needle}' in:\n{}",
+            run.stdout
+        );
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let over = tmp.path().join("over.json");
+    std::fs::write(&over, r#"{"trained_window": 0}"#).unwrap();
+    let run = crate::common::mullion(&["inspect", dir, "--config", over.to_str().unwrap()]);
+    assert!(
+        run.ok() && !run.stdout.contains("8x8, 4x4"),
+        "{}",
+        run.stdout
+    );
+}
+
+/// `mullion compare` of a Swin V2 folder (transformers 5.23.0) with its own weights file: the
+/// V2 tensors (bias MLP, logit scales, q and v biases) are compared like any other, nothing is
+/// left unmatched, and no weight moved.
+#[test]
+fn compare_covers_the_v2_tensors() {
+    let dir = fixtures().join("tfv2_backbone_odd");
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("cmp");
+    let run = crate::common::mullion(&[
+        "compare",
+        "--base",
+        dir.to_str().unwrap(),
+        "--tuned",
+        dir.join("model.safetensors").to_str().unwrap(),
+        "--images",
+        dir.join("input.png").to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    let drift = crate::common::read_csv(&out.join("drift.csv"));
+    for t in [
+        "layers.0.blocks.1.attn.cpb_mlp.2.weight",
+        "layers.3.blocks.0.attn.logit_scale",
+        "layers.2.blocks.1.attn.q_bias",
+        "layers.1.blocks.0.mlp.fc2.bias",
+    ] {
+        let row = drift.iter().find(|r| r["tensor"] == t).expect(t);
+        assert_eq!(row["relative_change"], "0.0", "{t}");
+    }
+    let unmatched = std::fs::read_to_string(out.join("unmatched.txt")).unwrap();
+    assert!(unmatched.lines().all(|l| l.starts_with('#')), "{unmatched}");
 }

@@ -233,6 +233,7 @@ fn token_weights_conserve_the_covered_area() {
         patch: 4,
         depths: vec![2, 2, 2, 2],
         window: (7, 7),
+        built_for: None,
     };
     let sem = Semantics {
         pad_order: PadOrder::PadThenShift,

@@ -4,7 +4,7 @@
 //! only one checkpoint has, or that differ in shape, are listed as unmatched; tensors outside
 //! the backbone (heads, buffers) are listed as not compared.
 
-use crate::engine::checkpoint::{Checkpoint, Part, BLOCK_PARTS};
+use crate::engine::checkpoint::{block_parts, Checkpoint, Family, Part};
 use crate::error::Result;
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeSet;
@@ -36,8 +36,15 @@ pub struct Drift {
     pub not_compared: Vec<String>,
 }
 
-/// Every canonical part a backbone with up to these depths may have, in model order.
-fn candidate_parts(depths: &[usize]) -> Vec<Part> {
+/// Every canonical part a backbone with up to these depths may have, in model order, with the
+/// block tensors of each family in `families` (a part neither file has is skipped later).
+fn candidate_parts(depths: &[usize], families: &[Family]) -> Vec<Part> {
+    let mut parts: Vec<&str> = Vec::new();
+    for s in families.iter().flat_map(|f| block_parts(*f)) {
+        if !parts.contains(s) {
+            parts.push(s);
+        }
+    }
     let mut out: Vec<Part> = ["proj.weight", "proj.bias", "norm.weight", "norm.bias"]
         .iter()
         .map(|s| Part::embed(s))
@@ -49,7 +56,7 @@ fn candidate_parts(depths: &[usize]) -> Vec<Part> {
             }
         }
         for j in 0..depth {
-            for s in BLOCK_PARTS {
+            for s in &parts {
                 out.push(Part::block(i, j, s));
             }
         }
@@ -94,7 +101,7 @@ pub fn weight_drift(base: &Checkpoint, tuned: &Checkpoint) -> Result<Drift> {
     // File keys that belong to a backbone part, per checkpoint.
     let (mut known_a, mut known_b) = (BTreeSet::new(), BTreeSet::new());
     let names = |c: &Checkpoint, p: &Part| c.layout.file_names(p).join(" + ");
-    for part in candidate_parts(&depths) {
+    for part in candidate_parts(&depths, &[base.family, tuned.family]) {
         let (pa, pb) = (base.present(&part), tuned.present(&part));
         if pa {
             known_a.extend(base.layout.file_names(&part));
@@ -213,8 +220,16 @@ impl DriftGroup {
         let block: usize = block.parse().ok()?;
         let group = match part {
             p if p.starts_with("attn.qkv.") => DriftGroup::Qkv,
+            // Swin V2: the q and v biases belong to qkv; the bias MLP and the logit scales
+            // make the position bias.
+            "attn.q_bias" | "attn.v_bias" => DriftGroup::Qkv,
             p if p.starts_with("attn.proj.") => DriftGroup::Proj,
-            p if p.starts_with("attn.relative_position_bias_table") => DriftGroup::BiasTable,
+            p if p.starts_with("attn.relative_position_bias_table")
+                || p.starts_with("attn.cpb_mlp.")
+                || p == "attn.logit_scale" =>
+            {
+                DriftGroup::BiasTable
+            }
             p if p.starts_with("mlp.fc1.") => DriftGroup::Fc1,
             p if p.starts_with("mlp.fc2.") => DriftGroup::Fc2,
             p if p.starts_with("norm1.") || p.starts_with("norm2.") => DriftGroup::Norms,
@@ -320,7 +335,7 @@ mod tests {
 
     #[test]
     fn parts_cover_merging_blocks_and_norms() {
-        let p = candidate_parts(&[1, 2]);
+        let p = candidate_parts(&[1, 2], &[Family::V1]);
         let names: Vec<String> = p.iter().map(Part::canonical).collect();
         assert!(names.contains(&"layers.1.downsample.reduction.weight".to_string()));
         assert!(names.contains(&"layers.1.blocks.1.attn.qkv.weight".to_string()));

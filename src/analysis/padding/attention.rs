@@ -176,6 +176,7 @@ mod tests {
             patch: 4,
             depths: vec![2, 2, 6, 2],
             window: (7, 7),
+            built_for: None,
         };
         let sem = Semantics {
             pad_order: PadOrder::PadThenShift,

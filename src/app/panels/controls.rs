@@ -428,6 +428,7 @@ fn padding_rules(bench: &Workbench, s: &mut Settings, ui: &mut egui::Ui) {
             SmallStage::Clamp,
             SmallStage::PadUp,
             SmallStage::ClampPerAxis,
+            SmallStage::AsBuilt,
         ],
         SmallStage::name,
     );

@@ -16,3 +16,4 @@ pub mod region_panel;
 pub mod region_table;
 pub mod sources;
 pub mod strip;
+pub mod window_question;
