@@ -61,7 +61,8 @@ pub enum Action {
     /// it); `trained`: the window it was pretrained at, 0 for the same.
     OpenWithWindow {
         path: PathBuf,
-        slot: super::loading::Slot,
+        /// Into the base slot (A) rather than the checkpoint's.
+        base: bool,
         window: usize,
         trained: usize,
     },

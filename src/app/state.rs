@@ -1264,10 +1264,13 @@ impl Workbench {
             Action::OpenBase(p) => self.open_base(&p),
             Action::OpenWithWindow {
                 path,
-                slot,
+                base,
                 window,
                 trained,
-            } => self.open_with_window(&path, slot, window, trained),
+            } => {
+                let slot = if base { Slot::Base } else { Slot::Main };
+                self.open_with_window(&path, slot, window, trained)
+            }
             Action::DismissWindowQuestion => self.window_question = None,
             Action::OpenTypedBase(s) => {
                 let p = PathBuf::from(s.trim());

@@ -92,3 +92,10 @@ pub fn num(row: &std::collections::BTreeMap<String, String>, key: &str) -> f64 {
         .parse()
         .unwrap_or_else(|_| panic!("{key} = '{}'", row[key]))
 }
+
+/// Held by the tests that take the whole machine (a Swin-B pass on a large image) and by those
+/// that wait on a real window with a deadline, so that the two never overlap on a 2-core runner.
+pub fn machine_to_myself() -> std::sync::MutexGuard<'static, ()> {
+    static LOCK: std::sync::Mutex<()> = std::sync::Mutex::new(());
+    LOCK.lock().unwrap_or_else(|e| e.into_inner())
+}

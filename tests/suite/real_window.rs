@@ -43,6 +43,7 @@ fn screenshot(
         eprintln!("skipped: Xvfb or import not installed (run .ci/run to install them)");
         return None;
     }
+    let _machine = crate::common::machine_to_myself();
     let display = format!(":{}", 90 + display_offset + 2 * (std::process::id() % 40));
     let _x = Kill(
         Command::new("Xvfb")

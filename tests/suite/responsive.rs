@@ -179,6 +179,7 @@ fn no_model_map_or_picture_work_runs_on_the_drawing_thread() {
 /// the switch to PCA and the pictures all run off the drawing thread.
 #[test]
 fn a_swin_b_pass_on_a_large_image_leaves_the_window_drawing() {
+    let _machine = crate::common::machine_to_myself();
     let dir = tempfile::tempdir().unwrap();
     let big = big_image(dir.path());
     let weights = dir.path().join("swin-b-random.safetensors");

@@ -59,7 +59,7 @@ impl WindowQuestionPanel {
                     if ui.button("Open with this window").clicked() {
                         out.push(Action::OpenWithWindow {
                             path: q.path.clone(),
-                            slot: q.slot,
+                            base: q.slot == Slot::Base,
                             window: self.window,
                             trained: self.trained,
                         });
