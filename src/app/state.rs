@@ -582,9 +582,14 @@ impl Workbench {
     ) -> LoadedWeights {
         Settings::remember(&mut self.settings.recent_weights, &path);
         let name = file_name(&path);
+        let window = loaded.model.config.window;
         self.info(format!(
-            "loaded {which}{name}: {} layout, depths {:?}",
-            loaded.report.layout, loaded.model.config.depths
+            "loaded {which}{name}: {}, {} layout, depths {:?}, window {}x{}",
+            loaded.report.family.split(" (").next().unwrap_or_default(),
+            loaded.report.layout,
+            loaded.model.config.depths,
+            window.0,
+            window.1
         ));
         LoadedWeights {
             name,

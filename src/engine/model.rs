@@ -804,11 +804,11 @@ impl std::fmt::Display for LoadReport {
             )?;
         }
         if let (Some(path), Some(why)) = (&self.config_json, &self.config_json_ignored) {
-            writeln!(f, "config.json {path} not used: {why}")?;
+            writeln!(f, "config.json  {path} not used: {why}")?;
         } else if let Some(path) = &self.config_json {
             writeln!(
                 f,
-                "config.json {} gave: {} (a --config file still overrides)",
+                "config.json  {} gave: {} (a --config file still overrides)",
                 path,
                 if self.from_config_json.is_empty() {
                     "nothing Mullion uses".to_string()
