@@ -82,10 +82,52 @@ pub fn read_beside(weights: &Path) -> Result<Option<BesideConfig>> {
         Some(other) => Ok(Some(ignore(format!(
             "model_type '{other}' is not a Swin model"
         )))),
-        None => Ok(Some(ignore(
-            "no model_type: not a transformers configuration".into(),
-        ))),
+        None => match timm_model_args(&v) {
+            Some((arch, args)) => parse(&path, &args).map(|mut b| {
+                b.fields[0] = format!("timm architecture {arch}");
+                Some(b)
+            }),
+            None => Ok(Some(ignore(
+                "neither a transformers configuration (model_type) nor a timm one (a swin \
+                 architecture)"
+                    .into(),
+            ))),
+        },
     }
+}
+
+/// A `config.json` as timm writes it beside exported weights (`architecture`, `model_args`,
+/// `pretrained_cfg`; timm 1.0.31's `save_config_for_hf`), for a Swin architecture: its
+/// `model_args` in transformers' field names, ready for [`parse`]. The window comes from
+/// `model_args.window_size`, or else from a plain `windowN` in the architecture name (timm's
+/// published names, e.g. `swinv2_tiny_window8_256`); a name that changes its window
+/// (`window12to16`) does not say the per-stage pretrained windows, so it gives none.
+fn timm_model_args(v: &Value) -> Option<(String, Value)> {
+    let arch = v["architecture"].as_str()?;
+    let model_type = if arch.starts_with("swinv2_") {
+        "swinv2"
+    } else if arch.starts_with("swin_") {
+        "swin"
+    } else {
+        return None;
+    };
+    let mut args = match &v["model_args"] {
+        Value::Object(m) => m.clone(),
+        _ => serde_json::Map::new(),
+    };
+    // timm builds V2 windows from the input at run time; `img_size` is not an as-built size.
+    args.remove("img_size");
+    args.insert("model_type".into(), model_type.into());
+    if !args.contains_key("window_size") {
+        let named = arch
+            .split('_')
+            .find_map(|part| part.strip_prefix("window"))
+            .and_then(|n| n.parse::<u64>().ok());
+        if let Some(w) = named {
+            args.insert("window_size".into(), w.into());
+        }
+    }
+    Some((arch.to_string(), Value::Object(args)))
 }
 
 fn parse(path: &Path, v: &Value) -> Result<BesideConfig> {
@@ -236,5 +278,26 @@ mod tests {
             e.contains("config.json") && e.contains("window_size"),
             "{e}"
         );
+    }
+
+    // timm's published names (timm 1.0.31's model registry): a plain `windowN` gives the window;
+    // `window12to16` (fine-tuned at another window) says no per-stage pretrained windows.
+    #[test]
+    fn a_timm_architecture_name_gives_a_plain_window_only() {
+        let args = |arch: &str| {
+            let v = serde_json::json!({"architecture": arch, "num_classes": 1000});
+            timm_model_args(&v)
+        };
+        let (_, a) = args("swinv2_small_window16_256").unwrap();
+        assert_eq!(a["window_size"], 16);
+        assert_eq!(a["model_type"], "swinv2");
+        let (_, a) = args("swinv2_base_window12to16_192to256").unwrap();
+        assert!(a.get("window_size").is_none());
+        let (_, a) = args("swin_tiny_patch4_window7_224").unwrap();
+        assert_eq!(
+            (a["window_size"].as_u64(), a["model_type"].as_str()),
+            (Some(7), Some("swin"))
+        );
+        assert!(args("vit_base_patch16_224").is_none());
     }
 }

@@ -41,7 +41,7 @@ V2_CASES = {
         window=8, patch=4, mlp_ratio=2.0, seed=502, trained=[0, 0, 0]),
     "timmv2_trained_window": dict(
         lib="timm", size=(136, 104), embed_dim=8, depths=[2, 2, 2], heads=[1, 2, 2],
-        window=8, patch=4, mlp_ratio=2.0, seed=503, trained=[6, 6, 4]),
+        window=8, patch=4, mlp_ratio=2.0, seed=503, trained=[6, 6, 4], timm_config=True),
     "tfv2_backbone_odd": dict(
         lib="tf5", size=(101, 77), embed_dim=8, depths=[2, 2, 2, 2], heads=[1, 2, 2, 4],
         window=8, patch=4, mlp_ratio=2.0, seed=601, trained=[0, 0, 0, 0], image_size=64,
@@ -139,6 +139,22 @@ def timm_v2_build(cfg, img_hw):
     ).eval()
 
 
+def write_timm_config(name, cfg, img_hw):
+    """The config.json timm writes beside exported weights (timm 1.0.31, save_config_for_hf),
+    for the same shape, as `timm_config.json` in the case folder: a test copies it beside the
+    weights as config.json and runs without --config. The architecture is a published V2 name;
+    model_args carry this case's shape."""
+    import timm
+    from timm.models._hub import save_config_for_hf
+
+    model = timm.create_model(
+        "swinv2_tiny_window8_256", pretrained=False, img_size=img_hw, patch_size=cfg["patch"],
+        num_classes=8, embed_dim=cfg["embed_dim"], depths=tuple(cfg["depths"]),
+        num_heads=tuple(cfg["heads"]), window_size=cfg["window"], mlp_ratio=cfg["mlp_ratio"],
+        pretrained_window_sizes=tuple(cfg["trained"]))
+    save_config_for_hf(model, os.path.join(mf.FIXTURES, name, "timm_config.json"))
+
+
 def run_timm_v2(name, cfg):
     W, H = cfg["size"]
     p = cfg["patch"]
@@ -176,6 +192,8 @@ def run_timm_v2(name, cfg):
                   pad_order="shift-then-pad", small_stage="clamp-per-axis", notes=" ".join(notes),
                   extra={"family": "v2", "override": override,
                          "pretrained_window_sizes": cfg["trained"], "precision": precision(gap)})
+    if cfg.get("timm_config"):
+        write_timm_config(name, cfg, (hp, wp))
 
 
 def precision(gap):

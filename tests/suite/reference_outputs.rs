@@ -562,6 +562,44 @@ fn features_command_on_swin_v2() {
 /// `mullion inspect` on a transformers folder names the family, the fields taken from
 /// config.json (as transformers 5.23.0 wrote it) and the pretrained windows in use; a --config
 /// file still wins over config.json.
+/// A timm V2 export travels with the `config.json` timm 1.0.31 writes beside it
+/// (`save_config_for_hf`: `architecture`, `model_args` with the window and pretrained windows;
+/// made by make_v2_fixtures.py as `timm_config.json`). Beside the weights it gives the window and
+/// the pretrained windows, so `mullion features` needs no --config and still matches the library.
+#[test]
+fn a_timm_config_json_beside_v2_weights_gives_the_window() {
+    let name = "timmv2_trained_window";
+    let (dir, case) = case(name);
+    let folder = tempfile::tempdir().unwrap();
+    let weights = folder.path().join("model.safetensors");
+    std::fs::copy(dir.join("weights.safetensors"), &weights).unwrap();
+    std::fs::copy(
+        dir.join("timm_config.json"),
+        folder.path().join("config.json"),
+    )
+    .unwrap();
+    let out = folder.path().join("features.safetensors");
+    let run = crate::common::mullion(&[
+        "features",
+        "--weights",
+        weights.to_str().unwrap(),
+        "--image",
+        dir.join("input.png").to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    assert!(run.ok(), "{}", run.stderr);
+    assert_features_match(name, &out, &dir, &case);
+    let inspect = crate::common::mullion(&["inspect", weights.to_str().unwrap()]);
+    assert!(
+        inspect
+            .stdout
+            .contains("timm architecture swinv2_tiny_window8_256"),
+        "{}",
+        inspect.stdout
+    );
+}
+
 #[test]
 fn inspect_names_the_v2_family_and_config_json() {
     let dir = fixtures().join("tfv2_model_trained_window");
