@@ -470,7 +470,7 @@ impl WindowAttention {
     /// The qkv projection and its q scale: folded into the q rows of the weight and bias for
     /// inference, kept apart for trainable weights. Cosine attention (V2) has no q scale; its
     /// bias is the q bias, zeros for k and the v bias.
-    fn new(
+    fn qkv_projection(
         src: &dyn WeightSource,
         dim: usize,
         heads: usize,
@@ -662,7 +662,8 @@ impl Block {
                 (bias, None, -100.0, LN_EPS)
             }
         };
-        let (qkv, q_scaled) = WindowAttention::new(src, dim, heads, cosine.is_some(), sub("attn"))?;
+        let (qkv, q_scaled) =
+            WindowAttention::qkv_projection(src, dim, heads, cosine.is_some(), sub("attn"))?;
         Ok(Block {
             norm1: LayerNorm::with_eps(src, dim, sub("norm1"), eps)?,
             attn: WindowAttention {
