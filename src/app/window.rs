@@ -120,7 +120,11 @@ impl Window {
             // The strip takes at most a little under half the height (scrolling when it needs
             // more); the lens takes what is left.
             // Comparing, the strip holds three rows (A, B, difference) and takes more.
-            let share = if b.comparing() { 0.58 } else { 0.45 };
+            let share = match (b.comparing(), ui.available_height() < 560.0) {
+                (true, true) => 0.64,
+                (true, false) => 0.58,
+                (false, _) => 0.45,
+            };
             let strip_h = (ui.available_height() * share).clamp(120.0, 620.0);
             p.strip.max_height = strip_h;
             egui::ScrollArea::vertical()

@@ -55,19 +55,27 @@ impl SourceBar {
                 }
                 if let Some(p) = bench.images.get(bench.current) {
                     let name = crate::io::file_name(p);
-                    ui.label(format!("{name}  ({}/{n})", bench.current + 1));
+                    // Whole labels move to the next row rather than break inside.
+                    ui.add(
+                        egui::Label::new(format!("{name}  ({}/{n})", bench.current + 1)).extend(),
+                    );
                 }
                 ui.separator();
                 let b_tag = if bench.base.is_some() { " (B)" } else { "" };
                 match &bench.weights {
                     Some(w) if w.random => {
-                        ui.colored_label(
-                            Color32::from_rgb(220, 80, 40),
-                            format!("RANDOM WEIGHTS{b_tag}: no learned structure"),
+                        ui.add(
+                            egui::Label::new(
+                                egui::RichText::new(format!(
+                                    "RANDOM WEIGHTS{b_tag}: no learned structure"
+                                ))
+                                .color(Color32::from_rgb(220, 80, 40)),
+                            )
+                            .extend(),
                         );
                     }
                     Some(w) => {
-                        ui.label(format!("checkpoint{b_tag}: {}", w.name));
+                        ui.add(egui::Label::new(format!("checkpoint{b_tag}: {}", w.name)).extend());
                     }
                     None => {
                         ui.label("no checkpoint");

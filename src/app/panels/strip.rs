@@ -189,6 +189,8 @@ impl StageStrip {
         let resp = ui
             .add(egui::Image::new((c.texture.id(), c.size)).sense(Sense::click_and_drag()))
             .on_hover_text_at_pointer(c.title.clone());
+        // Every picture is named for screen readers and tests, with its caption shown or not.
+        resp.widget_info(|| egui::WidgetInfo::labeled(egui::Role::Image, true, &c.title));
         if let Some(p) = resp.hover_pos() {
             pointer.set(to_input_px(resp.rect, c.canvas_px, p));
         }
@@ -369,6 +371,10 @@ impl StageStrip {
                 .map_or(String::new(), |w| w.name.clone()),
         );
         let shared = frame.maps.key.spec.shared_across_stages;
+        // On a short window (1280x720) the B and difference rows drop their captions: the
+        // column's A caption names the stage, the row's first cell names the row, and each
+        // picture keeps its full title on hover.
+        let compact = self.max_height < 420.0;
         egui::Grid::new("pair-strip")
             .spacing([8.0, 4.0])
             .show(ui, |ui| {
@@ -416,7 +422,9 @@ impl StageStrip {
                                     ptex.difference.get(s).and_then(Option::as_ref),
                                 ),
                             };
-                            ui.small(title.clone());
+                            if row == 0 || !compact {
+                                ui.small(title.clone());
+                            }
                             match texture {
                                 Some(t) => {
                                     let c = Cell {
