@@ -17,6 +17,7 @@ use crate::analysis::inspect::{query_attention, QueryAttention};
 use crate::analysis::padding::{all_attention_bytes, variant_input, variant_options, Variant};
 use crate::analysis::parse_map_kind;
 use crate::engine::config::{TrainedWindow, WindowSpec};
+use crate::engine::folder::is_checkpoint_folder;
 use crate::engine::input::{normalise, DEFAULT_MEMORY_LIMIT};
 use crate::engine::model::check_budget;
 use crate::engine::worker::{Event, Job};
@@ -281,8 +282,10 @@ impl Workbench {
 
     /// Route paths by their file ending: checkpoints, images and folders of images.
     pub fn open_paths(&mut self, paths: &[PathBuf]) {
-        let (weights, rest): (Vec<_>, Vec<_>) =
-            paths.iter().cloned().partition(|p| is_weights_path(p));
+        let (weights, rest): (Vec<_>, Vec<_>) = paths
+            .iter()
+            .cloned()
+            .partition(|p| is_weights_path(p) || is_checkpoint_folder(p));
         if let Some(w) = weights.last() {
             self.open_weights(w);
         }
@@ -407,9 +410,10 @@ impl Workbench {
     /// Load the checkpoint to compare with (A) on a loader thread; on failure the previous
     /// base stays.
     pub fn open_base(&mut self, path: &Path) {
-        if path.is_dir() || !is_weights_path(path) {
+        if !(is_checkpoint_folder(path) || (path.is_file() && is_weights_path(path))) {
             self.error(format!(
-                "{}: not a checkpoint (by its file ending); a base needs a checkpoint file",
+                "{}: not a checkpoint (by its file ending); a base needs a checkpoint file, or \
+                 a folder with config.json and the weights",
                 path.display()
             ));
             return;
@@ -1281,7 +1285,7 @@ impl Workbench {
                 let p = PathBuf::from(s.trim());
                 if s.trim().is_empty() {
                     self.error("type the path of the base checkpoint (A) first");
-                } else if p.is_file() {
+                } else if p.exists() {
                     self.open_base(&p);
                 } else {
                     self.error(format!("{}: no such checkpoint file", p.display()));

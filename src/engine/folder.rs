@@ -38,6 +38,15 @@ pub fn weights_file(path: &Path) -> Result<PathBuf> {
         })
 }
 
+/// Whether `path` is a checkpoint as transformers and timm save one: a folder with
+/// `config.json` and the weights inside it (so the window opens it as a checkpoint, not as a
+/// folder of images).
+pub fn is_checkpoint_folder(path: &Path) -> bool {
+    path.is_dir()
+        && path.join("config.json").is_file()
+        && FOLDER_WEIGHTS.iter().any(|n| path.join(n).is_file())
+}
+
 /// What a `config.json` beside the weights said.
 #[derive(Clone, Debug)]
 pub struct BesideConfig {

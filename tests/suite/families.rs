@@ -367,3 +367,31 @@ fn open_reads_its_shape_file_before_the_window() {
     let r = mullion(&["open", "--config", s(&broken)]);
     assert_eq!(r.code, 2, "{}", r.stderr);
 }
+
+/// A transformers checkpoint as it travels (transformers 5.23.0's `save_pretrained` folder:
+/// config.json beside model.safetensors; tests/fixtures/tfv2_model_trained_window) typed into
+/// the path field opens as the checkpoint, with its config.json, not as a folder of images; the
+/// same folder opens as the base (A).
+#[test]
+fn a_checkpoint_folder_opens_as_the_checkpoint_in_the_window() {
+    let folder = crate::common::fixtures().join("tfv2_model_trained_window");
+    let mut h = harness();
+    type_path(&mut h, &folder, "Open path");
+    let b = &h.state().bench;
+    let w = b
+        .weights
+        .as_ref()
+        .expect("the folder opened as the checkpoint");
+    let report = w.report.as_ref().unwrap();
+    assert!(report.family.starts_with("Swin V2"), "{}", report.family);
+    assert!(report.config_json.is_some(), "config.json was read");
+    assert!(
+        b.images.is_empty(),
+        "no image list from a checkpoint folder"
+    );
+    type_path(&mut h, &folder, "Open path as base (A)");
+    assert!(
+        h.state().bench.base.is_some(),
+        "the folder opened as the base"
+    );
+}

@@ -26,9 +26,9 @@ pub fn route_drop(paths: Vec<PathBuf>, over_base: bool) -> Vec<Action> {
     if !over_base {
         return vec![Action::OpenPaths(paths)];
     }
-    let (weights, rest): (Vec<_>, Vec<_>) = paths
-        .into_iter()
-        .partition(|p| crate::io::is_weights_path(p));
+    let (weights, rest): (Vec<_>, Vec<_>) = paths.into_iter().partition(|p| {
+        crate::io::is_weights_path(p) || crate::engine::folder::is_checkpoint_folder(p)
+    });
     let mut out: Vec<Action> = weights.into_iter().take(1).map(Action::OpenBase).collect();
     if !rest.is_empty() {
         out.push(Action::OpenPaths(rest));
