@@ -6,7 +6,7 @@
 //! numpy, the same weights in two key layouts, the difference map in the shared map machinery,
 //! and `mullion compare` / `mullion merge` end to end on the bundled demo pair.
 
-use crate::common::{fixtures, mullion, sample};
+use crate::common::{fixtures, mullion, sample, Run};
 use crate::common::{num, read_csv};
 use candle_core::{DType, Device, Tensor};
 use mullion::analysis::compare::{linear_cka, token_cosines, weight_drift, CkaSums};
@@ -22,6 +22,23 @@ use mullion::engine::{
 use serde_json::Value;
 use std::collections::{BTreeMap, HashMap};
 use std::path::{Path, PathBuf};
+
+/// `mullion compare --base A --tuned B --images IMAGES --out OUT`, then `extra`.
+fn compare(a: &Path, b: &Path, images: &Path, out: &Path, extra: &[&str]) -> Run {
+    let mut args = vec![
+        "compare",
+        "--base",
+        a.to_str().unwrap(),
+        "--tuned",
+        b.to_str().unwrap(),
+        "--images",
+        images.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ];
+    args.extend(extra);
+    mullion(&args)
+}
 
 fn expected() -> Value {
     let text = std::fs::read_to_string(fixtures().join("compare/expected.json")).unwrap();
@@ -302,19 +319,7 @@ fn the_same_weights_in_two_layouts_have_no_drift_and_cka_one() {
     ] {
         let out = dir.path().join(format!("out-{image}"));
         let img = sample(image);
-        let mut args = vec![
-            "compare",
-            "--base",
-            timm.to_str().unwrap(),
-            "--tuned",
-            hf.to_str().unwrap(),
-            "--images",
-            img.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ];
-        args.extend(extra);
-        let run = mullion(&args);
+        let run = compare(&timm, &hf, &img, &out, &extra);
         assert!(run.ok(), "{}", run.stderr);
         let drift = read_csv(&out.join("drift.csv"));
         assert_eq!(drift.len(), small_config_parts());
@@ -384,21 +389,13 @@ fn toolkit_layout_drift_uses_timm_names() {
     );
     let out = dir.path().join("out");
     let img = case.join("input.png");
-    let run = mullion(&[
-        "compare",
-        "--base",
-        mm.to_str().unwrap(),
-        "--tuned",
-        timm_path.to_str().unwrap(),
-        "--images",
-        img.to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-        "--pad-order",
-        "pad-then-shift",
-        "--small-stage",
-        "pad-up",
-    ]);
+    let run = compare(
+        &mm,
+        &timm_path,
+        &img,
+        &out,
+        &["--pad-order", "pad-then-shift", "--small-stage", "pad-up"],
+    );
     assert!(run.ok(), "{}", run.stderr);
     let drift = read_csv(&out.join("drift.csv"));
     assert_eq!(drift.len(), parts.len());
@@ -492,19 +489,7 @@ fn compare_on_the_demo_pair_end_to_end() {
     }
     std::fs::write(imgs.join("notes.txt"), "not an image").unwrap();
     let out = dir.path().join("out");
-    let args = [
-        "compare",
-        "--base",
-        a.to_str().unwrap(),
-        "--tuned",
-        b.to_str().unwrap(),
-        "--images",
-        imgs.to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-        "--figures",
-    ];
-    let run = mullion(&args);
+    let run = compare(&a, &b, &imgs, &out, &["--figures"]);
     assert!(run.ok(), "{}", run.stderr);
     let text = std::fs::read_to_string(out.join("stages.csv")).unwrap();
     assert!(text.starts_with("image,stage,linear_cka,mean_cosine,min_cosine,tokens\n"));
@@ -595,7 +580,7 @@ fn compare_on_the_demo_pair_end_to_end() {
         );
     }
     // A rerun reuses every image and writes the same table.
-    let again = mullion(&args);
+    let again = compare(&a, &b, &imgs, &out, &["--figures"]);
     assert!(
         again.ok() && again.stderr.contains("0 computed, 3 reused"),
         "{}",
@@ -607,17 +592,7 @@ fn compare_on_the_demo_pair_end_to_end() {
     );
     // Bad usage exits 2 and names the argument.
     let missing = dir.path().join("nope.png");
-    let bad = mullion(&[
-        "compare",
-        "--base",
-        a.to_str().unwrap(),
-        "--tuned",
-        b.to_str().unwrap(),
-        "--images",
-        missing.to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
+    let bad = compare(&a, &b, &missing, &out, &[]);
     assert_eq!(bad.code, 2, "{}", bad.stderr);
     assert!(
         bad.stderr.contains("--images") && bad.stderr.contains("nope.png"),
@@ -646,28 +621,14 @@ fn sharded_compare_merged_equals_one_run() {
     let dir = tempfile::tempdir().unwrap();
     let (a, b) = (sample("demo-early.safetensors"), sample("demo.safetensors"));
     let images = crate::common::sample_data();
-    let base = [
-        "compare",
-        "--base",
-        a.to_str().unwrap(),
-        "--tuned",
-        b.to_str().unwrap(),
-        "--images",
-        images.to_str().unwrap(),
-        "--out",
-    ];
     let one = dir.path().join("one");
-    let mut args = base.to_vec();
-    args.push(one.to_str().unwrap());
-    let run = mullion(&args);
+    let run = compare(&a, &b, &images, &one, &[]);
     assert!(run.ok(), "{}", run.stderr);
     let split = dir.path().join("split");
     let mut shard_dirs = Vec::new();
     for k in 1..=3 {
-        let mut args = base.to_vec();
         let shard = format!("{k}/3");
-        args.extend([split.to_str().unwrap(), "--shard", shard.as_str()]);
-        let run = mullion(&args);
+        let run = compare(&a, &b, &images, &split, &["--shard", shard.as_str()]);
         assert!(run.ok(), "{}", run.stderr);
         shard_dirs.push(split.join(format!("shard-{k}-of-3")));
     }
@@ -758,17 +719,7 @@ fn a_rerun_with_more_images_adds_them_to_the_saved_sums() {
         std::fs::copy(sample(n), grow.join(n)).unwrap();
     }
     let run = |images: &Path, out: &Path| {
-        let r = mullion(&[
-            "compare",
-            "--base",
-            a.to_str().unwrap(),
-            "--tuned",
-            b.to_str().unwrap(),
-            "--images",
-            images.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ]);
+        let r = compare(&a, &b, &images, &out, &[]);
         assert!(r.ok(), "{}", r.stderr);
         r.stderr
     };
@@ -832,18 +783,7 @@ fn other_widths_give_cka_without_cosine_and_other_depths_are_refused() {
     );
     let img = sample("tray-03-97x160.png");
     let out = dir.path().join("out");
-    let r = mullion(&[
-        "compare",
-        "--base",
-        narrow.to_str().unwrap(),
-        "--tuned",
-        wide.to_str().unwrap(),
-        "--images",
-        img.to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-        "--figures",
-    ]);
+    let r = compare(&narrow, &wide, &img, &out, &["--figures"]);
     assert!(r.ok(), "{}", r.stderr);
     let rows = read_csv(&out.join("stages.csv"));
     assert_eq!(rows.len(), 8);
@@ -871,17 +811,7 @@ fn other_widths_give_cka_without_cosine_and_other_depths_are_refused() {
     assert!(out
         .join("figures/tray-03-97x160.compare.figure.png")
         .is_file());
-    let r = mullion(&[
-        "compare",
-        "--base",
-        narrow.to_str().unwrap(),
-        "--tuned",
-        shallow.to_str().unwrap(),
-        "--images",
-        img.to_str().unwrap(),
-        "--out",
-        dir.path().join("o2").to_str().unwrap(),
-    ]);
+    let r = compare(&narrow, &shallow, &img, &dir.path().join("o2"), &[]);
     assert_eq!(r.code, 1, "{}", r.stderr);
     assert!(
         r.stderr.contains("shallow.safetensors") && r.stderr.contains("3 stages"),
@@ -903,17 +833,7 @@ fn a_broken_image_is_listed_and_the_run_fails_after_writing() {
     std::fs::write(imgs.join("broken.png"), b"not a png").unwrap();
     let out = dir.path().join("out");
     let (a, b) = (sample("demo-early.safetensors"), sample("demo.safetensors"));
-    let r = mullion(&[
-        "compare",
-        "--base",
-        a.to_str().unwrap(),
-        "--tuned",
-        b.to_str().unwrap(),
-        "--images",
-        imgs.to_str().unwrap(),
-        "--out",
-        out.to_str().unwrap(),
-    ]);
+    let r = compare(&a, &b, &imgs, &out, &[]);
     assert_eq!(r.code, 1, "{}", r.stderr);
     assert!(r.stderr.contains("broken.png"), "{}", r.stderr);
     let rows = read_csv(&out.join("stages.csv"));
@@ -964,17 +884,7 @@ fn report_with_a_base_measures_the_difference_map() {
     ]);
     assert!(r.ok(), "{}", r.stderr);
     let cmp = dir.path().join("cmp");
-    let c = mullion(&[
-        "compare",
-        "--base",
-        a.to_str().unwrap(),
-        "--tuned",
-        b.to_str().unwrap(),
-        "--images",
-        images.to_str().unwrap(),
-        "--out",
-        cmp.to_str().unwrap(),
-    ]);
+    let c = compare(&a, &b, &images, &cmp, &[]);
     assert!(c.ok(), "{}", c.stderr);
     let rows = read_csv(&rep.join("regions.csv"));
     let stages = read_csv(&cmp.join("stages.csv"));
